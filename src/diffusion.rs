@@ -103,7 +103,11 @@ impl Diffusion {
                 .collect(),
         };
         if v.len() != dim {
-            return Err(Error::shape("sigma (one value per dimension)", dim, v.len()));
+            return Err(Error::shape(
+                "sigma (one value per dimension)",
+                dim,
+                v.len(),
+            ));
         }
         Ok(v)
     }
@@ -114,7 +118,11 @@ impl Diffusion {
             Kind::Constant(s) => Ok(Sigma::Scalar(*s)),
             Kind::PerDim(v) => {
                 if v.len() != dim {
-                    return Err(Error::shape("sigma (one value per dimension)", dim, v.len()));
+                    return Err(Error::shape(
+                        "sigma (one value per dimension)",
+                        dim,
+                        v.len(),
+                    ));
                 }
                 Ok(Sigma::Row(
                     Tensor::from_vec(v.clone(), (1, dim), dev)?.to_dtype(dtype)?,

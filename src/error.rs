@@ -73,7 +73,11 @@ pub enum Error {
 
 impl Error {
     /// Shorthand for [`Error::InvalidConfig`].
-    pub(crate) fn config(field: &'static str, value: impl ToString, reason: impl Into<String>) -> Self {
+    pub(crate) fn config(
+        field: &'static str,
+        value: impl ToString,
+        reason: impl Into<String>,
+    ) -> Self {
         Error::InvalidConfig {
             field,
             value: value.to_string(),

@@ -87,3 +87,8 @@ pub use solver::{simulate, Paths, Scheme, Sde, SolverConfig};
 pub use stack::{run_deep, DEEP_STACK_BYTES};
 pub use target::{zeros, FnDensity, GaussianDensity, GaussianMixture, LogDensity};
 pub use terminal::{BernoulliNll, GaussianNll, LogDensityRatio, TerminalCost};
+
+/// The README's code blocks, compiled and run as doctests.
+#[cfg(doctest)]
+#[doc = include_str!("../README.md")]
+struct ReadmeDoctests;

@@ -10,7 +10,7 @@ pub fn cholesky(a: &[f64], n: usize) -> Option<Vec<f64>> {
                 s -= l[i * n + k] * l[j * n + k];
             }
             if i == j {
-                if !(s > 0.0) || !s.is_finite() {
+                if s.partial_cmp(&0.0) != Some(std::cmp::Ordering::Greater) || !s.is_finite() {
                     return None;
                 }
                 l[i * n + i] = s.sqrt();

@@ -55,10 +55,18 @@ impl BrownianIncrements {
             return Err(Error::config("batch", batch, "simulate at least 1 path"));
         }
         if dim == 0 {
-            return Err(Error::config("dim", dim, "the state needs at least 1 dimension"));
+            return Err(Error::config(
+                "dim",
+                dim,
+                "the state needs at least 1 dimension",
+            ));
         }
         if n_steps == 0 {
-            return Err(Error::config("n_steps", n_steps, "use at least 1 solver step"));
+            return Err(Error::config(
+                "n_steps",
+                n_steps,
+                "use at least 1 solver step",
+            ));
         }
         crate::error::check_positive("t_end", t_end)?;
         let h = t_end / n_steps as f64;

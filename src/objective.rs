@@ -38,11 +38,19 @@ impl FreeEnergy {
     ///
     /// # Errors
     /// [`Error::Shape`] if the terminal cost does not return one value per path.
-    pub fn new(paths: &Paths, terminal: &dyn TerminalCost, observation: Option<&Tensor>) -> Result<Self> {
+    pub fn new(
+        paths: &Paths,
+        terminal: &dyn TerminalCost,
+        observation: Option<&Tensor>,
+    ) -> Result<Self> {
         let batch = paths.end.dim(0)?;
         let g = terminal.cost(&paths.end, observation)?;
         if g.dims() != [batch] {
-            return Err(Error::shape("terminal cost (one value per path)", [batch], g.dims()));
+            return Err(Error::shape(
+                "terminal cost (one value per path)",
+                [batch],
+                g.dims(),
+            ));
         }
         let per_path = (&paths.control_cost + &g)?;
         let loss = per_path.mean_all()?;
@@ -59,7 +67,9 @@ impl FreeEnergy {
     /// # Errors
     /// [`Error::NonFinite`] if the objective is NaN or infinite.
     pub fn values(&self) -> Result<FreeEnergyValues> {
-        let mean = |t: &Tensor| -> Result<f64> { Ok(t.mean_all()?.to_dtype(DType::F64)?.to_scalar::<f64>()?) };
+        let mean = |t: &Tensor| -> Result<f64> {
+            Ok(t.mean_all()?.to_dtype(DType::F64)?.to_scalar::<f64>()?)
+        };
         let v = FreeEnergyValues {
             loss: mean(&self.loss)?,
             control_cost: mean(&self.control_cost)?,

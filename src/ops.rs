@@ -41,6 +41,7 @@ impl Activation {
 
 /// Rational approximation of tanh for f32 (branch-free, vectorisable).
 #[inline(always)]
+#[allow(clippy::excessive_precision)]
 pub(crate) fn tanh_f32(x: f32) -> f32 {
     let x = x.clamp(-7.905_311, 7.905_311);
     let x2 = x * x;
@@ -164,11 +165,21 @@ impl CustomOp2 for ActGrad {
         let out = match (s1, s2) {
             (CpuStorage::F32(a), CpuStorage::F32(g)) => {
                 let (a, g) = (contig(a, l1, "activation")?, contig(g, l2, "activation")?);
-                CpuStorage::F32(a.iter().zip(g).map(|(&s, &g)| act_grad_f32(self.0, s, g)).collect())
+                CpuStorage::F32(
+                    a.iter()
+                        .zip(g)
+                        .map(|(&s, &g)| act_grad_f32(self.0, s, g))
+                        .collect(),
+                )
             }
             (CpuStorage::F64(a), CpuStorage::F64(g)) => {
                 let (a, g) = (contig(a, l1, "activation")?, contig(g, l2, "activation")?);
-                CpuStorage::F64(a.iter().zip(g).map(|(&s, &g)| act_grad_f64(self.0, s, g)).collect())
+                CpuStorage::F64(
+                    a.iter()
+                        .zip(g)
+                        .map(|(&s, &g)| act_grad_f64(self.0, s, g))
+                        .collect(),
+                )
             }
             _ => bail!("activation gradient: dtype mismatch"),
         };
@@ -209,15 +220,21 @@ impl CustomOp2 for BiasAdd {
     ) -> Result<(CpuStorage, Shape)> {
         let dims = l1.dims();
         if dims.len() != 2 || l2.dims() != [dims[1]] {
-            bail!("bias-add: expected xs (batch, n) and bias (n), got {:?} and {:?}", dims, l2.dims())
+            bail!(
+                "bias-add: expected xs (batch, n) and bias (n), got {:?} and {:?}",
+                dims,
+                l2.dims()
+            )
         }
         let out = match (s1, s2) {
-            (CpuStorage::F32(x), CpuStorage::F32(b)) => {
-                CpuStorage::F32(add_rows(contig(x, l1, "bias-add")?, contig(b, l2, "bias-add")?))
-            }
-            (CpuStorage::F64(x), CpuStorage::F64(b)) => {
-                CpuStorage::F64(add_rows(contig(x, l1, "bias-add")?, contig(b, l2, "bias-add")?))
-            }
+            (CpuStorage::F32(x), CpuStorage::F32(b)) => CpuStorage::F32(add_rows(
+                contig(x, l1, "bias-add")?,
+                contig(b, l2, "bias-add")?,
+            )),
+            (CpuStorage::F64(x), CpuStorage::F64(b)) => CpuStorage::F64(add_rows(
+                contig(x, l1, "bias-add")?,
+                contig(b, l2, "bias-add")?,
+            )),
             _ => bail!("bias-add: dtype mismatch or unsupported dtype"),
         };
         Ok((out, l1.shape().clone()))

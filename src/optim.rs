@@ -57,7 +57,11 @@ impl AdamWConfig {
             }
         }
         if !(self.weight_decay >= 0.0 && self.weight_decay.is_finite()) {
-            return Err(Error::config("weight_decay", self.weight_decay, "must be finite and >= 0"));
+            return Err(Error::config(
+                "weight_decay",
+                self.weight_decay,
+                "must be finite and >= 0",
+            ));
         }
         Ok(())
     }
@@ -136,7 +140,11 @@ impl AdamW {
         let mut sq = 0.0;
         for (_, var) in &self.vars {
             if let Some(g) = grads.get(var.as_tensor()) {
-                sq += g.sqr()?.sum_all()?.to_dtype(DType::F64)?.to_scalar::<f64>()?;
+                sq += g
+                    .sqr()?
+                    .sum_all()?
+                    .to_dtype(DType::F64)?
+                    .to_scalar::<f64>()?;
             }
         }
         Ok(sq.sqrt())
@@ -152,7 +160,10 @@ impl AdamW {
         if !norm.is_finite() {
             return Err(Error::NonFinite {
                 what: "gradient".into(),
-                detail: format!("norm {norm} at optimiser step {}; the update was skipped", self.steps + 1),
+                detail: format!(
+                    "norm {norm} at optimiser step {}; the update was skipped",
+                    self.steps + 1
+                ),
             });
         }
         let scale = match max_norm {
@@ -173,7 +184,8 @@ impl AdamW {
             let v = ((&self.v[i] * c.beta2)? + (g.sqr()? * (1.0 - c.beta2))?)?;
             let step = ((&m * (1.0 / bc1))? / ((&v * (1.0 / bc2))?.sqrt()? + c.eps)?)?;
             let theta = var.as_tensor();
-            let next = ((theta * (1.0 - c.learning_rate * c.weight_decay))? - (step * c.learning_rate)?)?;
+            let next =
+                ((theta * (1.0 - c.learning_rate * c.weight_decay))? - (step * c.learning_rate)?)?;
             var.set(&next)?;
             self.m[i] = m;
             self.v[i] = v;
@@ -204,11 +216,15 @@ impl AdamW {
         for (name, var) in &self.vars {
             for (prefix, out) in [("m", &mut m), ("v", &mut v)] {
                 let key = format!("{prefix}.{name}");
-                let t = tensors
-                    .get(&key)
-                    .ok_or_else(|| Error::shape(format!("optimiser moment {key}"), var.dims(), "missing"))?;
+                let t = tensors.get(&key).ok_or_else(|| {
+                    Error::shape(format!("optimiser moment {key}"), var.dims(), "missing")
+                })?;
                 if t.dims() != var.dims() {
-                    return Err(Error::shape(format!("optimiser moment {key}"), var.dims(), t.dims()));
+                    return Err(Error::shape(
+                        format!("optimiser moment {key}"),
+                        var.dims(),
+                        t.dims(),
+                    ));
                 }
                 out.push(t.to_dtype(var.dtype())?);
             }

@@ -79,7 +79,11 @@ impl GaussianMixture {
             .map(Vec::len)
             .ok_or_else(|| Error::config("centers", "[]", "give at least one center"))?;
         if d == 0 || centers.iter().any(|c| c.len() != d) {
-            return Err(Error::config("centers", format!("{centers:?}"), "all centers need the same, nonzero dimension"));
+            return Err(Error::config(
+                "centers",
+                format!("{centers:?}"),
+                "all centers need the same, nonzero dimension",
+            ));
         }
         Ok(Self {
             centers,
@@ -134,10 +138,9 @@ impl LogDensity for GaussianMixture {
         let diff = x.unsqueeze(1)?.broadcast_sub(&c)?; // (batch, k, d)
         let s2 = self.std * self.std;
         let quad = diff.sqr()?.sum(2)?.affine(-0.5 / s2, 0.0)?; // (batch, k)
-        let log_norm = -0.5 * d as f64 * (2.0 * std::f64::consts::PI * s2).ln()
-            - (k as f64).ln()
+        let log_norm = -0.5 * d as f64 * (2.0 * std::f64::consts::PI * s2).ln() - (k as f64).ln()
             + self.log_scale;
-        Ok(log_sum_exp_rows(&quad)?.affine(1.0, log_norm)?)
+        log_sum_exp_rows(&quad)?.affine(1.0, log_norm)
     }
 }
 
@@ -168,8 +171,13 @@ impl GaussianDensity {
         if cov.len() != d * d || d == 0 {
             return Err(Error::shape("covariance (d × d)", d * d, cov.len()));
         }
-        let l = crate::linalg::cholesky(&cov, d)
-            .ok_or_else(|| Error::config("cov", format!("{cov:?}"), "must be symmetric positive definite"))?;
+        let l = crate::linalg::cholesky(&cov, d).ok_or_else(|| {
+            Error::config(
+                "cov",
+                format!("{cov:?}"),
+                "must be symmetric positive definite",
+            )
+        })?;
         let log_det = crate::linalg::log_det_from_cholesky(&l, d);
         let precision = crate::linalg::cholesky_inverse(&l, d);
         let log_norm = -0.5 * (d as f64 * (2.0 * std::f64::consts::PI).ln() + log_det);

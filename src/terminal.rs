@@ -32,7 +32,11 @@ impl<T: TerminalCost + ?Sized> TerminalCost for Box<T> {
 type MeanMap = Arc<dyn Module + Send + Sync>;
 
 fn need_observation<'a>(obs: Option<&'a Tensor>, who: &str) -> candle_core::Result<&'a Tensor> {
-    obs.ok_or_else(|| candle_core::Error::Msg(format!("{who} needs an observation per path; pass the observed rows")))
+    obs.ok_or_else(|| {
+        candle_core::Error::Msg(format!(
+            "{who} needs an observation per path; pass the observed rows"
+        ))
+    })
 }
 
 fn apply_mean_map(map: &Option<MeanMap>, x: &Tensor) -> candle_core::Result<Tensor> {
@@ -64,12 +68,20 @@ impl GaussianNll {
     ///
     /// # Errors
     /// [`Error::InvalidConfig`] for a non-positive or non-finite scale.
-    pub fn fixed(scale: &[f64], dtype: candle_core::DType, dev: &candle_core::Device) -> Result<Self> {
+    pub fn fixed(
+        scale: &[f64],
+        dtype: candle_core::DType,
+        dev: &candle_core::Device,
+    ) -> Result<Self> {
         for &s in scale {
             crate::error::check_positive("scale", s)?;
         }
         if scale.is_empty() {
-            return Err(Error::config("scale", "[]", "give one scale per observed dimension"));
+            return Err(Error::config(
+                "scale",
+                "[]",
+                "give one scale per observed dimension",
+            ));
         }
         let logs: Vec<f64> = scale.iter().map(|s| s.ln()).collect();
         let n = logs.len();

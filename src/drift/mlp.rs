@@ -42,10 +42,18 @@ impl MlpConfig {
     /// [`Error::InvalidConfig`] for a zero width or depth.
     pub fn validate(&self) -> Result<()> {
         if self.width == 0 {
-            return Err(Error::config("width", self.width, "hidden layers need at least 1 unit"));
+            return Err(Error::config(
+                "width",
+                self.width,
+                "hidden layers need at least 1 unit",
+            ));
         }
         if self.depth == 0 {
-            return Err(Error::config("depth", self.depth, "use at least 1 hidden layer"));
+            return Err(Error::config(
+                "depth",
+                self.depth,
+                "use at least 1 hidden layer",
+            ));
         }
         Ok(())
     }
@@ -118,7 +126,11 @@ impl TimeMlp {
     ) -> Result<Self> {
         cfg.validate()?;
         if dim == 0 {
-            return Err(Error::config("dim", dim, "the state needs at least 1 dimension"));
+            return Err(Error::config(
+                "dim",
+                dim,
+                "the state needs at least 1 dimension",
+            ));
         }
         let w = cfg.width;
         let fan_in = (dim + 1 + context_dim) as f64;

@@ -41,7 +41,11 @@ impl FollmerDrift {
     /// [`Error::InvalidConfig`] for `samples == 0`.
     pub fn new(target: Arc<dyn LogDensity>, samples: usize, seed: u64) -> Result<Self> {
         if samples == 0 {
-            return Err(Error::config("samples", samples, "use at least 1 Monte Carlo sample"));
+            return Err(Error::config(
+                "samples",
+                samples,
+                "use at least 1 Monte Carlo sample",
+            ));
         }
         let d = target.dim();
         let normals = standard_normals(&mut generator(seed, 0), samples * d);
@@ -58,21 +62,36 @@ impl Drift for FollmerDrift {
         self.target.dim()
     }
 
-    fn forward(&self, x: &Tensor, t: f64, _context: Option<&Tensor>) -> candle_core::Result<Tensor> {
+    fn forward(
+        &self,
+        x: &Tensor,
+        t: f64,
+        _context: Option<&Tensor>,
+    ) -> candle_core::Result<Tensor> {
         let (b, d) = x.dims2()?;
         let m = self.samples;
         let dtype = x.dtype();
         let s = (1.0 - t).max(0.0).sqrt();
-        let z = Tensor::from_vec(self.normals.clone(), (1, m, d), x.device())?.to_dtype(DType::F64)?;
+        let z =
+            Tensor::from_vec(self.normals.clone(), (1, m, d), x.device())?.to_dtype(DType::F64)?;
         let x64 = x.detach().to_dtype(DType::F64)?;
-        let y = x64.unsqueeze(1)?.broadcast_add(&z.affine(s, 0.0)?)?.reshape((b * m, d))?;
+        let y = x64
+            .unsqueeze(1)?
+            .broadcast_add(&z.affine(s, 0.0)?)?
+            .reshape((b * m, d))?;
         let y = Var::from_tensor(&y)?;
         let half_sq = y.as_tensor().sqr()?.sum(1)?.affine(0.5, 0.0)?;
-        let ell = (self.target.log_density(&y.as_tensor().to_dtype(dtype)?)?.to_dtype(DType::F64)? + half_sq)?;
+        let ell = (self
+            .target
+            .log_density(&y.as_tensor().to_dtype(dtype)?)?
+            .to_dtype(DType::F64)?
+            + half_sq)?;
         let grads = ell.sum_all()?.backward()?;
         let grad = grads
             .get(y.as_tensor())
-            .ok_or_else(|| candle_core::Error::Msg("the target's log-density does not depend on x".into()))?
+            .ok_or_else(|| {
+                candle_core::Error::Msg("the target's log-density does not depend on x".into())
+            })?
             .reshape((b, m, d))?;
         let ell = ell.detach().reshape((b, m))?;
         let w = candle_nn::ops::softmax(&ell, 1)?.unsqueeze(2)?;

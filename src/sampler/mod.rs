@@ -109,7 +109,11 @@ impl SamplerConfig {
         check_positive("sigma", self.sigma)?;
         self.control.validate()?;
         if self.batch_size == 0 {
-            return Err(Error::config("batch_size", 0, "use at least 1 path per step"));
+            return Err(Error::config(
+                "batch_size",
+                0,
+                "use at least 1 path per step",
+            ));
         }
         self.optimizer.validate()?;
         if let Some(c) = self.max_grad_norm {
@@ -209,7 +213,11 @@ impl Sampler {
     ) -> Result<Self> {
         cfg.validate()?;
         if control.dim() != target.dim() {
-            return Err(Error::shape("control dimension vs target", target.dim(), control.dim()));
+            return Err(Error::shape(
+                "control dimension vs target",
+                target.dim(),
+                control.dim(),
+            ));
         }
         let reference_var = cfg.sigma * cfg.sigma * cfg.solver.t_end;
         let terminal = LogDensityRatio::new(target.clone(), reference_var)?;
@@ -249,10 +257,13 @@ impl Sampler {
     pub fn step(&mut self) -> Result<FreeEnergyValues> {
         let d = self.target.dim();
         let dtype = self.cfg.precision.dtype();
-        let noise = self
-            .cfg
-            .solver
-            .sample_noise(&mut self.noise_rng, self.cfg.batch_size, d, dtype, &self.device)?;
+        let noise = self.cfg.solver.sample_noise(
+            &mut self.noise_rng,
+            self.cfg.batch_size,
+            d,
+            dtype,
+            &self.device,
+        )?;
         let sde = Sde::new(&self.diffusion).with_control(self.control.as_ref());
         let (solver, terminal, optimizer) = (&self.cfg.solver, &self.terminal, &mut self.optimizer);
         let max_norm = self.cfg.max_grad_norm;
@@ -285,7 +296,14 @@ impl Sampler {
     /// [`Error::InvalidConfig`] for `paths == 0`; [`Error::NonFinite`] if every weight is zero.
     pub fn estimate(&self, paths: usize, seed: u64) -> Result<LogZEstimate> {
         let sde = Sde::new(&self.diffusion).with_control(self.control.as_ref());
-        estimate_log_z(&sde, &self.terminal, &self.cfg.solver, self.cfg.precision.dtype(), paths, seed)
+        estimate_log_z(
+            &sde,
+            &self.terminal,
+            &self.cfg.solver,
+            self.cfg.precision.dtype(),
+            paths,
+            seed,
+        )
     }
 }
 
@@ -308,7 +326,11 @@ pub fn estimate_log_z(
         return Err(Error::config("paths", 0, "use at least 1 path"));
     }
     if solver.scheme != Scheme::EulerMaruyama {
-        return Err(Error::config("scheme", format!("{:?}", solver.scheme), "log Z estimates need Euler–Maruyama"));
+        return Err(Error::config(
+            "scheme",
+            format!("{:?}", solver.scheme),
+            "log Z estimates need Euler–Maruyama",
+        ));
     }
     let d = terminal.target().dim();
     let dev = Device::Cpu;
@@ -325,7 +347,8 @@ pub fn estimate_log_z(
             let x0 = Tensor::zeros((n, d), dtype, &dev)?;
             let p = simulate(sde, solver, &x0, &noise, None)?;
             let g = terminal.cost(&p.end, None)?;
-            let to = |t: &Tensor| -> Result<Vec<f64>> { Ok(t.to_dtype(DType::F64)?.to_vec1::<f64>()?) };
+            let to =
+                |t: &Tensor| -> Result<Vec<f64>> { Ok(t.to_dtype(DType::F64)?.to_vec1::<f64>()?) };
             let lw = to(&(&p.log_weight - &g)?)?;
             let obj = to(&(&p.control_cost + &g)?)?;
             let c = to(&p.control_cost)?;
@@ -359,7 +382,10 @@ fn summarise(
     samples: Vec<Vec<f64>>,
 ) -> Result<LogZEstimate> {
     let k = log_weights.len() as f64;
-    let max = log_weights.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let max = log_weights
+        .iter()
+        .copied()
+        .fold(f64::NEG_INFINITY, f64::max);
     if !max.is_finite() {
         return Err(Error::NonFinite {
             what: "importance weights".into(),

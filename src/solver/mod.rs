@@ -243,7 +243,11 @@ pub fn simulate(
                 let dz = noise
                     .dz()
                     .ok_or_else(|| {
-                        Error::config("scheme", "sra1", "SRA1 needs noise drawn with ΔZ (with_area = true)")
+                        Error::config(
+                            "scheme",
+                            "sra1",
+                            "SRA1 needs noise drawn with ΔZ (with_area = true)",
+                        )
                     })?
                     .get(k)
                     .ok_or_else(|| Error::shape("number of ΔZ increments", cfg.n_steps, k))?;
@@ -263,13 +267,20 @@ fn check_inputs(
     context: Option<&Tensor>,
 ) -> Result<()> {
     if noise.shape() != (batch, dim) {
-        return Err(Error::shape("noise vs x0 (batch, d)", (batch, dim), noise.shape()));
+        return Err(Error::shape(
+            "noise vs x0 (batch, d)",
+            (batch, dim),
+            noise.shape(),
+        ));
     }
     if noise.n_steps() != cfg.n_steps {
         return Err(Error::config(
             "n_steps",
             cfg.n_steps,
-            format!("the noise has {} steps; draw it with the same config", noise.n_steps()),
+            format!(
+                "the noise has {} steps; draw it with the same config",
+                noise.n_steps()
+            ),
         ));
     }
     let h = cfg.step();
@@ -277,13 +288,20 @@ fn check_inputs(
         return Err(Error::config(
             "t_end",
             cfg.t_end,
-            format!("the noise was drawn with step {} but the grid step is {h}", noise.step()),
+            format!(
+                "the noise was drawn with step {} but the grid step is {h}",
+                noise.step()
+            ),
         ));
     }
     for (name, d) in [("prior drift", sde.prior), ("control", sde.control)] {
         if let Some(d) = d {
             if d.dim() != dim {
-                return Err(Error::shape(format!("{name} dimension vs state"), dim, d.dim()));
+                return Err(Error::shape(
+                    format!("{name} dimension vs state"),
+                    dim,
+                    d.dim(),
+                ));
             }
         }
     }

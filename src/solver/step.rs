@@ -71,7 +71,11 @@ fn drift_at(
 ) -> Result<(Option<Tensor>, Option<Tensor>)> {
     let check = |name: &str, out: Tensor| -> Result<Tensor> {
         if out.dims() != x.dims() {
-            return Err(Error::shape(format!("{name} output at t = {t}"), x.dims(), out.dims()));
+            return Err(Error::shape(
+                format!("{name} output at t = {t}"),
+                x.dims(),
+                out.dims(),
+            ));
         }
         Ok(out)
     };
