@@ -81,6 +81,16 @@ impl Diffusion {
         })
     }
 
+    /// A copy whose learned σ (if any) carries no autodiff history.
+    pub fn detached(&self) -> Self {
+        match &self.kind {
+            Kind::Learned(t) => Self {
+                kind: Kind::Learned(t.detach()),
+            },
+            _ => self.clone(),
+        }
+    }
+
     /// Whether σ has trainable parameters.
     pub fn is_learned(&self) -> bool {
         matches!(self.kind, Kind::Learned(_))

@@ -57,9 +57,12 @@
 #![deny(missing_debug_implementations)]
 #![forbid(unsafe_code)]
 
+pub mod checkpoint;
+mod data;
 mod diffusion;
 mod drift;
 mod error;
+mod latent;
 pub mod linalg;
 mod noise;
 mod objective;
@@ -70,12 +73,16 @@ mod rng;
 mod sampler;
 mod solver;
 mod stack;
+mod tabular;
 mod target;
 mod terminal;
+mod train;
 
+pub use data::{split_rows, Standardizer, Table};
 pub use diffusion::Diffusion;
 pub use drift::{Drift, FnDrift, MlpConfig, ModuleDrift, TimeMlp};
 pub use error::{Error, Result};
+pub use latent::{Decoder, DecoderConfig, DecoderKind, LatentConfig, LatentModel, PathTerms};
 pub use noise::BrownianIncrements;
 pub use objective::{FreeEnergy, FreeEnergyValues};
 pub use ops::Activation;
@@ -85,8 +92,13 @@ pub use rng::{generator, standard_normals, Generator};
 pub use sampler::{estimate_log_z, FollmerDrift, LogZEstimate, Precision, Sampler, SamplerConfig};
 pub use solver::{simulate, Paths, Scheme, Sde, SolverConfig};
 pub use stack::{run_deep, DEEP_STACK_BYTES};
+pub use tabular::{Evaluation, TabularModel};
 pub use target::{zeros, FnDensity, GaussianDensity, GaussianMixture, LogDensity};
 pub use terminal::{BernoulliNll, GaussianNll, LogDensityRatio, TerminalCost};
+pub use train::{
+    EpochRecord, History, Observer, StepInfo, Termination, TrainConfig, TrainReport, TrainState,
+    Trainer,
+};
 
 /// The README's code blocks, compiled and run as doctests.
 #[cfg(doctest)]

@@ -50,3 +50,23 @@ pub fn cholesky_inverse(l: &[f64], n: usize) -> Vec<f64> {
 pub fn log_det_from_cholesky(l: &[f64], n: usize) -> f64 {
     2.0 * (0..n).map(|i| l[i * n + i].ln()).sum::<f64>()
 }
+
+/// Inverse of a lower-triangular matrix (forward substitution); `None` if a diagonal entry
+/// is zero or not finite.
+pub fn lower_triangular_inverse(l: &[f64], n: usize) -> Option<Vec<f64>> {
+    let mut inv = vec![0.0; n * n];
+    for c in 0..n {
+        for i in c..n {
+            let mut s = if i == c { 1.0 } else { 0.0 };
+            for k in c..i {
+                s -= l[i * n + k] * inv[k * n + c];
+            }
+            let d = l[i * n + i];
+            if d == 0.0 || !d.is_finite() {
+                return None;
+            }
+            inv[i * n + c] = s / d;
+        }
+    }
+    Some(inv)
+}

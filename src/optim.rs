@@ -179,7 +179,10 @@ impl AdamW {
             let Some(g) = grads.get(var.as_tensor()) else {
                 continue;
             };
-            let g = g.affine(scale, 0.0)?;
+            // candle does not detach the gradients of Vars: a weight gradient hᵀg still
+            // references the forward graph through h. Detach it, or the moment estimates
+            // would keep every step's graph alive.
+            let g = g.detach().affine(scale, 0.0)?;
             let m = ((&self.m[i] * c.beta1)? + (&g * (1.0 - c.beta1))?)?;
             let v = ((&self.v[i] * c.beta2)? + (g.sqr()? * (1.0 - c.beta2))?)?;
             let step = ((&m * (1.0 / bc1))? / ((&v * (1.0 / bc2))?.sqrt()? + c.eps)?)?;

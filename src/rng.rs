@@ -35,6 +35,10 @@ pub(crate) mod streams {
     pub const INIT: u64 = 1;
     /// Brownian increments during training.
     pub const NOISE: u64 = 2;
+    /// Minibatch order.
+    pub const DATA: u64 = 3;
+    /// Training/validation split.
+    pub const SPLIT: u64 = 5;
     /// Evaluation and generation draws.
     pub const EVAL: u64 = 4;
 }

@@ -59,9 +59,19 @@ impl MlpConfig {
     }
 }
 
+#[derive(Clone)]
 struct Dense {
     weight: Tensor,
     bias: Tensor,
+}
+
+impl Dense {
+    fn detached(&self) -> Self {
+        Self {
+            weight: self.weight.detach(),
+            bias: self.bias.detach(),
+        }
+    }
 }
 
 /// A multilayer perceptron `f(x, t[, context])` with time entering the first layer.
@@ -88,6 +98,7 @@ struct Dense {
 /// assert_eq!(net.forward(&x, 0.5, None)?.dims(), &[5, 3]);
 /// # Ok::<(), neural_sde::Error>(())
 /// ```
+#[derive(Clone)]
 pub struct TimeMlp {
     dim: usize,
     context_dim: usize,
@@ -177,6 +188,23 @@ impl TimeMlp {
             hidden,
             out,
         })
+    }
+}
+
+impl TimeMlp {
+    /// A copy whose tensors carry no autodiff history: evaluating it builds no graph (for
+    /// inference). It reads the parameter values current at the time of the call.
+    pub fn detached(&self) -> Self {
+        Self {
+            dim: self.dim,
+            context_dim: self.context_dim,
+            activation: self.activation,
+            first: self.first.detached(),
+            weight_t: self.weight_t.detach(),
+            weight_c: self.weight_c.as_ref().map(Tensor::detach),
+            hidden: self.hidden.iter().map(Dense::detached).collect(),
+            out: self.out.detached(),
+        }
     }
 }
 
