@@ -17,7 +17,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::data::Standardizer;
 use crate::error::{Error, Result};
-use crate::latent::{LatentConfig, LatentModel};
+use crate::latent::{LatentConfig, LatentModel, PriorFactory};
 use crate::optim::AdamW;
 use crate::params::sorted_vars;
 use crate::tabular::TabularModel;
@@ -129,7 +129,65 @@ pub(crate) fn write(
     write_atomic(path, &bytes)
 }
 
-pub(crate) fn read(path: &Path) -> Result<Checkpoint> {
+/// What [`inspect`] reports about a checkpoint, without building the model.
+#[derive(Debug, Clone)]
+pub struct Summary {
+    /// Version of the crate that wrote the file.
+    pub crate_version: String,
+    /// Column names.
+    pub columns: Vec<String>,
+    /// Standardisation.
+    pub scaler: Standardizer,
+    /// Model configuration.
+    pub model_config: LatentConfig,
+    /// Training configuration, when the file holds a training state.
+    pub train_config: Option<TrainConfig>,
+    /// Training state, when stored.
+    pub state: Option<TrainState>,
+    /// Number of model parameters.
+    pub parameters: usize,
+    /// Training history.
+    pub history: History,
+}
+
+/// Reads a checkpoint's header and checks its tensors (as loading does).
+///
+/// # Errors
+/// [`Error::Checkpoint`] naming what is wrong with the file.
+pub fn inspect(path: &Path) -> Result<Summary> {
+    let (bytes, header) = read_header(path)?;
+    let st = safetensors::SafeTensors::deserialize(&bytes).map_err(|e| Error::Checkpoint {
+        path: path.to_path_buf(),
+        reason: format!("not a valid safetensors file, or truncated ({e})"),
+    })?;
+    let crate_version = safetensors::SafeTensors::read_metadata(&bytes)
+        .ok()
+        .and_then(|(_, m)| {
+            m.metadata()
+                .as_ref()
+                .and_then(|m| m.get("crate_version").cloned())
+        })
+        .unwrap_or_else(|| "unknown".into());
+    let parameters = st
+        .tensors()
+        .iter()
+        .filter(|(n, _)| !n.starts_with("optim.") && !n.starts_with("best."))
+        .map(|(_, v)| v.shape().iter().product::<usize>())
+        .sum();
+    Ok(Summary {
+        crate_version,
+        columns: header.columns,
+        scaler: header.scaler,
+        model_config: header.model_config,
+        train_config: header.train_config,
+        state: header.state,
+        parameters,
+        history: header.history,
+    })
+}
+
+/// Reads the file and checks its format and header.
+fn read_header(path: &Path) -> Result<(Vec<u8>, Header)> {
     let bad = |reason: String| Error::Checkpoint {
         path: path.to_path_buf(),
         reason,
@@ -140,7 +198,8 @@ pub(crate) fn read(path: &Path) -> Result<Checkpoint> {
             _ => format!("cannot read the file ({e})"),
         })
     })?;
-    let st = safetensors::SafeTensors::deserialize(&bytes)
+    // Validates the whole layout, so a truncated file is caught here.
+    safetensors::SafeTensors::deserialize(&bytes)
         .map_err(|e| bad(format!("not a valid safetensors file, or truncated ({e}); use a file written by `neural-sde fit`")))?;
     let (_, md) = safetensors::SafeTensors::read_metadata(&bytes)
         .map_err(|e| bad(format!("unreadable header ({e})")))?;
@@ -149,9 +208,11 @@ pub(crate) fn read(path: &Path) -> Result<Checkpoint> {
     })?;
     match meta.get("format").map(String::as_str) {
         Some(FORMAT) => {}
-        other => return Err(bad(format!(
+        other => {
+            return Err(bad(format!(
             "format is {other:?}, expected \"{FORMAT}\": this file was not written by neural-sde"
-        ))),
+        )))
+        }
     }
     match meta.get("format_version").map(String::as_str) {
         Some(FORMAT_VERSION) => {}
@@ -177,6 +238,28 @@ pub(crate) fn read(path: &Path) -> Result<Checkpoint> {
             header.data_dim
         )));
     }
+    Ok((bytes, header))
+}
+
+pub(crate) fn read(path: &Path, factory: Option<&PriorFactory>) -> Result<Checkpoint> {
+    let bad = |reason: String| Error::Checkpoint {
+        path: path.to_path_buf(),
+        reason,
+    };
+    let (bytes, header) = read_header(path)?;
+    let st = safetensors::SafeTensors::deserialize(&bytes)
+        .map_err(|e| bad(format!("not a valid safetensors file, or truncated ({e})")))?;
+    match (header.model_config.custom_prior, factory.is_some()) {
+        (true, false) => {
+            return Err(bad(
+                "this model uses a custom prior drift; load it from Rust with `TabularModel::load_with_prior` and the same builder".into(),
+            ))
+        }
+        (false, true) => {
+            return Err(bad("this model uses the built-in prior drift; load it with `TabularModel::load`".into()))
+        }
+        _ => {}
+    }
     let dev = Device::Cpu;
     let want_dtype = header.model_config.precision.dtype();
     let st_dtype = match want_dtype {
@@ -196,7 +279,7 @@ pub(crate) fn read(path: &Path) -> Result<Checkpoint> {
         file.insert(name, t);
     }
     // Rebuild the model, then copy every weight in after checking its shape.
-    let model = LatentModel::new(&header.model_config, header.data_dim, 0)
+    let model = LatentModel::build(&header.model_config, header.data_dim, 0, factory)
         .map_err(|e| bad(format!("the stored configuration is invalid ({e})")))?;
     let vars = sorted_vars(model.varmap())?;
     for (name, var) in &vars {

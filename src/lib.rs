@@ -59,6 +59,7 @@
 
 pub mod checkpoint;
 mod data;
+mod demo;
 mod diffusion;
 mod drift;
 mod error;
@@ -69,6 +70,8 @@ mod objective;
 pub mod ops;
 mod optim;
 mod params;
+#[cfg(feature = "plot")]
+pub mod plot;
 mod rng;
 mod sampler;
 mod solver;
@@ -79,10 +82,13 @@ mod terminal;
 mod train;
 
 pub use data::{split_rows, Standardizer, Table};
+pub use demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
 pub use diffusion::Diffusion;
 pub use drift::{Drift, FnDrift, MlpConfig, ModuleDrift, TimeMlp};
 pub use error::{Error, Result};
-pub use latent::{Decoder, DecoderConfig, DecoderKind, LatentConfig, LatentModel, PathTerms};
+pub use latent::{
+    Decoder, DecoderConfig, DecoderKind, LatentConfig, LatentModel, PathTerms, PriorFactory,
+};
 pub use noise::BrownianIncrements;
 pub use objective::{FreeEnergy, FreeEnergyValues};
 pub use ops::Activation;

@@ -84,7 +84,19 @@ impl TabularModel {
     /// # Errors
     /// [`Error::Checkpoint`] naming what is wrong with the file.
     pub fn load(path: impl AsRef<Path>) -> Result<Self> {
-        Ok(crate::checkpoint::read(path.as_ref())?.model)
+        Ok(crate::checkpoint::read(path.as_ref(), None)?.model)
+    }
+
+    /// Loads a model whose prior drift was built by `prior` (see
+    /// [`crate::Trainer::with_prior`]); pass the same builder.
+    ///
+    /// # Errors
+    /// [`Error::Checkpoint`] naming what is wrong with the file.
+    pub fn load_with_prior(
+        path: impl AsRef<Path>,
+        prior: &crate::latent::PriorFactory,
+    ) -> Result<Self> {
+        Ok(crate::checkpoint::read(path.as_ref(), Some(prior))?.model)
     }
 
     /// The table's columns in the model's order.

@@ -1,4 +1,5 @@
 //! Ornstein–Uhlenbeck: moments of Euler–Maruyama and SRA1 against their exact recursions and
+#![allow(clippy::needless_range_loop)] // index loops mirror the textbook formulas
 //! the continuous solution, and observed strong orders against the published ones.
 mod common;
 

@@ -1,4 +1,5 @@
 //! The batched tensor solver against a plain scalar f64 loop on the same noise, step by step
+#![allow(clippy::needless_range_loop)] // index loops mirror the textbook formulas
 //! (common practice, no source: an independent re-implementation of the documented formulas,
 //! the EM and SRA1 steps and the control-cost and Girsanov sums).
 mod common;

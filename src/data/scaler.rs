@@ -38,7 +38,7 @@ impl Standardizer {
         }
         let scale: Vec<f64> = var.iter().map(|v| v.sqrt()).collect();
         for j in 0..d {
-            if !(scale[j] > 1e-12 * mean[j].abs().max(1e-300)) {
+            if scale[j].is_nan() || scale[j] <= 1e-12 * mean[j].abs().max(1e-300) {
                 return Err(Error::Data {
                     path: table.source().to_path_buf(),
                     reason: format!(

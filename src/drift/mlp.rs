@@ -217,6 +217,10 @@ impl Drift for TimeMlp {
         self.context_dim
     }
 
+    fn detached(&self) -> Option<Box<dyn Drift>> {
+        Some(Box::new(TimeMlp::detached(self)))
+    }
+
     fn forward(&self, x: &Tensor, t: f64, context: Option<&Tensor>) -> candle_core::Result<Tensor> {
         // The time enters as a bias shift b + t·w_t: one tiny op on (width,) per call.
         let bias = (&self.first.bias + self.weight_t.affine(t, 0.0)?)?;

@@ -50,6 +50,13 @@ pub trait Drift: Send + Sync {
     fn context_dim(&self) -> usize {
         0
     }
+
+    /// A copy whose parameters carry no autodiff history, used for inference (evaluation,
+    /// generation) so that no graph is built. `None` (the default) means the drift itself is
+    /// used, which works but records a graph.
+    fn detached(&self) -> Option<Box<dyn Drift>> {
+        None
+    }
 }
 
 impl<D: Drift + ?Sized> Drift for Box<D> {
@@ -62,6 +69,9 @@ impl<D: Drift + ?Sized> Drift for Box<D> {
     fn context_dim(&self) -> usize {
         (**self).context_dim()
     }
+    fn detached(&self) -> Option<Box<dyn Drift>> {
+        (**self).detached()
+    }
 }
 
 impl<D: Drift + ?Sized> Drift for std::sync::Arc<D> {
@@ -73,5 +83,8 @@ impl<D: Drift + ?Sized> Drift for std::sync::Arc<D> {
     }
     fn context_dim(&self) -> usize {
         (**self).context_dim()
+    }
+    fn detached(&self) -> Option<Box<dyn Drift>> {
+        (**self).detached()
     }
 }

@@ -22,7 +22,7 @@ use rand::RngCore;
 use serde::{Deserialize, Serialize};
 
 use crate::diffusion::Diffusion;
-use crate::drift::{MlpConfig, TimeMlp};
+use crate::drift::{Drift, MlpConfig, TimeMlp};
 use crate::error::{check_positive, Error, Result};
 use crate::noise::BrownianIncrements;
 use crate::objective::FreeEnergy;
@@ -53,7 +53,17 @@ pub struct LatentConfig {
     pub init_noise_share: f64,
     /// Tensor precision.
     pub precision: Precision,
+    /// Set when the prior drift was supplied by a [`PriorFactory`] rather than built from
+    /// [`LatentConfig::prior`]; loading such a model needs the same factory.
+    pub custom_prior: bool,
 }
+
+/// Builds a user-defined prior drift `b(z, t)` on latent dimension `d`, creating its
+/// parameters through the given builder (under the `prior` prefix) and drawing initial
+/// values from the generator. Used by [`LatentModel::with_prior`],
+/// [`crate::Trainer::with_prior`] and [`crate::TabularModel::load_with_prior`].
+pub type PriorFactory =
+    Arc<dyn Fn(&ParamBuilder, usize, &mut dyn RngCore) -> Result<Box<dyn Drift>> + Send + Sync>;
 
 impl Default for LatentConfig {
     fn default() -> Self {
@@ -69,6 +79,7 @@ impl Default for LatentConfig {
             },
             init_noise_share: 0.5,
             precision: Precision::F32,
+            custom_prior: false,
         }
     }
 }
@@ -111,7 +122,7 @@ impl LatentConfig {
 
 #[derive(Clone)]
 struct Nets {
-    prior: TimeMlp,
+    prior: Arc<dyn Drift>,
     control: control::ScoreControl,
     decoder: Arc<decoder::Decoder>,
     nll: observation::FullGaussian,
@@ -123,7 +134,10 @@ impl Nets {
         let decoder = Arc::new(self.decoder.detached());
         let nll = self.nll.detached(decoder.clone());
         Self {
-            prior: self.prior.detached(),
+            prior: match self.prior.detached() {
+                Some(d) => Arc::from(d),
+                None => self.prior.clone(),
+            },
             control: self.control.detached(decoder.clone(), nll.clone()),
             nll,
             decoder,
@@ -174,16 +188,31 @@ impl LatentModel {
     /// # Errors
     /// [`Error::InvalidConfig`] for a bad config or `data_dim == 0`.
     pub fn new(cfg: &LatentConfig, data_dim: usize, seed: u64) -> Result<Self> {
-        Self::build(cfg, data_dim, seed, VarMap::new())
+        Self::build(cfg, data_dim, seed, None)
     }
 
-    /// Rebuilds the model over an existing `VarMap` (whose tensors are reused by name).
+    /// A model whose prior drift is built by `prior` (a user architecture) instead of the
+    /// built-in network; everything else is as in [`LatentModel::new`].
+    ///
+    /// # Errors
+    /// As [`LatentModel::new`], and whatever `prior` returns; [`Error::Shape`] if the drift's
+    /// dimension is not the latent dimension.
+    pub fn with_prior(
+        cfg: &LatentConfig,
+        data_dim: usize,
+        seed: u64,
+        prior: &PriorFactory,
+    ) -> Result<Self> {
+        Self::build(cfg, data_dim, seed, Some(prior))
+    }
+
     pub(crate) fn build(
         cfg: &LatentConfig,
         data_dim: usize,
         seed: u64,
-        varmap: VarMap,
+        factory: Option<&PriorFactory>,
     ) -> Result<Self> {
+        let varmap = VarMap::new();
         cfg.validate()?;
         if data_dim == 0 {
             return Err(Error::config("data_dim", 0, "rows need at least 1 column"));
@@ -192,7 +221,25 @@ impl LatentModel {
         let device = Device::Cpu;
         let pb = ParamBuilder::new(&varmap, cfg.precision.dtype(), &device);
         let mut rng = generator(seed, streams::INIT);
-        let prior = TimeMlp::new(&cfg.prior, latent_dim, 0, &pb.pp("prior"), &mut rng)?;
+        let prior: Arc<dyn Drift> = match factory {
+            Some(f) => Arc::from(f(&pb.pp("prior"), latent_dim, &mut rng)?),
+            None => Arc::new(TimeMlp::new(
+                &cfg.prior,
+                latent_dim,
+                0,
+                &pb.pp("prior"),
+                &mut rng,
+            )?),
+        };
+        if prior.dim() != latent_dim || prior.context_dim() != 0 {
+            return Err(Error::shape(
+                "prior drift (dimension, context dimension)",
+                (latent_dim, 0),
+                (prior.dim(), prior.context_dim()),
+            ));
+        }
+        let mut cfg = cfg.clone();
+        cfg.custom_prior = factory.is_some();
         let decoder = Arc::new(decoder::Decoder::new(
             &cfg.decoder,
             latent_dim,
@@ -213,7 +260,7 @@ impl LatentModel {
         )?;
         let diffusion = Diffusion::constant(cfg.sigma)?;
         Ok(Self {
-            cfg: cfg.clone(),
+            cfg,
             data_dim,
             latent_dim,
             varmap,
@@ -335,7 +382,7 @@ impl LatentModel {
 
     fn sde<'a>(&self, nets: &'a Nets) -> Sde<'a> {
         Sde::new(&nets.diffusion)
-            .with_prior(&nets.prior)
+            .with_prior(nets.prior.as_ref())
             .with_control(&nets.control)
     }
 
@@ -383,7 +430,7 @@ impl LatentModel {
     /// [`Error::Candle`] on tensor errors.
     pub fn generate(&self, n: usize, rng: &mut dyn RngCore) -> Result<Vec<f64>> {
         let nets = self.nets.detached();
-        let sde = Sde::new(&nets.diffusion).with_prior(&nets.prior);
+        let sde = Sde::new(&nets.diffusion).with_prior(nets.prior.as_ref());
         let noise =
             self.cfg
                 .solver

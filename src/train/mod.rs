@@ -17,7 +17,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::data::{split_rows, Standardizer, Table};
 use crate::error::{Error, Result};
-use crate::latent::{LatentConfig, LatentModel};
+use crate::latent::{LatentConfig, LatentModel, PriorFactory};
 use crate::optim::{AdamW, AdamWConfig};
 use crate::params::sorted_vars;
 use crate::rng::{generator, streams, Generator};
@@ -166,6 +166,29 @@ impl Trainer {
     /// [`Error::InvalidConfig`] for bad settings; [`Error::Data`] for a constant column or
     /// fewer training rows than one batch.
     pub fn new(table: &Table, model_cfg: LatentConfig, train_cfg: TrainConfig) -> Result<Self> {
+        Self::create(table, model_cfg, train_cfg, None)
+    }
+
+    /// As [`Trainer::new`], with a user-defined prior drift built by `prior` (see
+    /// [`PriorFactory`]). Load the result with [`TabularModel::load_with_prior`].
+    ///
+    /// # Errors
+    /// As [`Trainer::new`].
+    pub fn with_prior(
+        table: &Table,
+        model_cfg: LatentConfig,
+        train_cfg: TrainConfig,
+        prior: PriorFactory,
+    ) -> Result<Self> {
+        Self::create(table, model_cfg, train_cfg, Some(&prior))
+    }
+
+    fn create(
+        table: &Table,
+        model_cfg: LatentConfig,
+        train_cfg: TrainConfig,
+        prior: Option<&PriorFactory>,
+    ) -> Result<Self> {
         train_cfg.validate()?;
         model_cfg.validate()?;
         let (train_idx, val_idx) = split_rows(
@@ -193,7 +216,7 @@ impl Trainer {
         } else {
             scaler.transform(&table.take_rows(&val_idx)?)
         };
-        let model = LatentModel::new(&model_cfg, table.n_cols(), train_cfg.seed)?;
+        let model = LatentModel::build(&model_cfg, table.n_cols(), train_cfg.seed, prior)?;
         model.init_from_data(&train_rows)?;
         let optimizer = AdamW::new(model.varmap(), Self::adam_cfg(&train_cfg))?;
         let best = snapshot(&model)?;
@@ -254,8 +277,23 @@ impl Trainer {
     /// [`Error::Checkpoint`] for an unreadable or inconsistent file; [`Error::Data`] when the
     /// table is not the one the checkpoint was trained on.
     pub fn resume(path: impl AsRef<Path>, table: &Table) -> Result<Self> {
-        let path = path.as_ref();
-        let ck = crate::checkpoint::read(path)?;
+        Self::resume_from(path.as_ref(), table, None)
+    }
+
+    /// As [`Trainer::resume`] for a model trained with [`Trainer::with_prior`].
+    ///
+    /// # Errors
+    /// As [`Trainer::resume`].
+    pub fn resume_with_prior(
+        path: impl AsRef<Path>,
+        table: &Table,
+        prior: PriorFactory,
+    ) -> Result<Self> {
+        Self::resume_from(path.as_ref(), table, Some(&prior))
+    }
+
+    fn resume_from(path: &Path, table: &Table, prior: Option<&PriorFactory>) -> Result<Self> {
+        let ck = crate::checkpoint::read(path, prior)?;
         let (train_cfg, state, moments, best) = match (
             ck.train_config,
             ck.state,

@@ -1,5 +1,5 @@
 //! Data sets from `linfa-datasets` and the full-covariance Gaussian baseline.
-#![allow(dead_code)]
+#![allow(dead_code, clippy::needless_range_loop)]
 
 use neural_sde::{linalg, Table};
 

@@ -1,0 +1,159 @@
+//! `neural-sde fit`.
+
+use std::path::PathBuf;
+
+use clap::Args;
+use neural_sde::{LatentConfig, MlpConfig, SolverConfig, Termination, TrainConfig, Trainer};
+
+use super::{check_output, fraction, load_table, positive_f64, positive_usize, Failure};
+
+#[derive(Debug, Args)]
+pub struct FitArgs {
+    /// CSV file with a header line and numeric columns.
+    data: Option<PathBuf>,
+    /// Fit the built-in demo table (synthetic greenhouse readings, 2,000 rows × 5 columns).
+    #[arg(long)]
+    demo: bool,
+    /// Where to write the model (a .safetensors file; written only when fitting succeeds).
+    #[arg(long)]
+    out: PathBuf,
+    /// Columns to model, comma-separated [default: all].
+    #[arg(long, value_delimiter = ',')]
+    columns: Option<Vec<String>>,
+    /// Latent dimension [default: the number of columns].
+    #[arg(long, value_parser = positive_usize)]
+    latent_dim: Option<usize>,
+    /// Hidden units per layer of the drift and control networks.
+    #[arg(long, default_value_t = 64, value_parser = positive_usize)]
+    hidden: usize,
+    /// Hidden layers of the drift and control networks.
+    #[arg(long, default_value_t = 2, value_parser = positive_usize)]
+    depth: usize,
+    /// Euler–Maruyama steps of the latent path on [0, 1].
+    #[arg(long, default_value_t = 20, value_parser = positive_usize)]
+    steps: usize,
+    /// Maximum number of epochs (each at least 50 optimiser steps).
+    #[arg(long, default_value_t = 300, value_parser = positive_usize)]
+    epochs: usize,
+    /// Rows per minibatch.
+    #[arg(long, default_value_t = 64, value_parser = positive_usize)]
+    batch_size: usize,
+    /// Peak learning rate (AdamW, warm-up then cosine decay).
+    #[arg(long, default_value_t = 3e-3, value_parser = positive_f64, allow_negative_numbers = true)]
+    learning_rate: f64,
+    /// Seed of every random draw (split, minibatches, weights, noise).
+    #[arg(long, default_value_t = 0)]
+    seed: u64,
+    /// Share of rows held out to measure the validation ELBO (early stopping).
+    #[arg(long, default_value_t = 0.2, value_parser = fraction, allow_negative_numbers = true)]
+    validation_fraction: f64,
+    /// Stop training after this many seconds and keep the best model so far.
+    #[arg(long, default_value_t = 90.0, value_parser = positive_f64, allow_negative_numbers = true)]
+    time_budget: f64,
+    /// Write the per-epoch history (CSV) here.
+    #[arg(long)]
+    history: Option<PathBuf>,
+    /// Write the training and validation ELBO curves (SVG) here.
+    #[arg(long)]
+    plot: Option<PathBuf>,
+    /// Continue training from this checkpoint, on the same table (other model options are
+    /// taken from the checkpoint).
+    #[arg(long)]
+    resume: Option<PathBuf>,
+}
+
+pub fn run(a: FitArgs) -> Result<(), Failure> {
+    check_output(&a.out, "--out")?;
+    for (p, opt) in [(&a.history, "--history"), (&a.plot, "--plot")] {
+        if let Some(p) = p {
+            check_output(p, opt)?;
+        }
+    }
+    let table = load_table(a.data.as_deref(), a.demo, a.columns.as_deref())?;
+    let mut trainer = match &a.resume {
+        Some(ck) => {
+            let mut t = Trainer::resume(ck, &table)?;
+            t.set_epochs(a.epochs.max(t.state().epoch));
+            t
+        }
+        None => {
+            let mlp = MlpConfig {
+                width: a.hidden,
+                depth: a.depth,
+                ..MlpConfig::default()
+            };
+            let model = LatentConfig {
+                latent_dim: a.latent_dim,
+                prior: mlp.clone(),
+                control: mlp,
+                solver: SolverConfig {
+                    n_steps: a.steps,
+                    ..SolverConfig::default()
+                },
+                ..LatentConfig::default()
+            };
+            let train = TrainConfig {
+                epochs: a.epochs,
+                batch_size: a.batch_size,
+                learning_rate: a.learning_rate,
+                seed: a.seed,
+                validation_fraction: a.validation_fraction,
+                ..TrainConfig::default()
+            };
+            Trainer::new(&table, model, train)?
+        }
+    };
+    trainer.set_time_budget(Some(a.time_budget));
+    let dims = table.n_cols();
+    let jac = trainer.model().scaler().log_jacobian();
+    let progress = super::progress::Progress::new(dims, jac, Some(a.time_budget));
+    let bar = progress.bar_clone();
+    trainer.add_observer(Box::new(progress));
+    let outcome = trainer.fit();
+    bar.finish_and_clear();
+    let (report, failure) = match outcome {
+        Ok(r) => (Some(r), None),
+        // Keep what was learned: after a training failure the trainer holds the best weights.
+        Err(e @ neural_sde::Error::Training(_)) => (None, Some(Failure::from(e))),
+        Err(e) => return Err(e.into()),
+    };
+    trainer.save(&a.out)?;
+    if let Some(h) = &a.history {
+        trainer.history().write_csv(h)?;
+    }
+    if let Some(p) = &a.plot {
+        neural_sde::plot::elbo_curve_svg(trainer.history(), dims, p)?;
+    }
+    if let Some(f) = failure {
+        return Err(Failure::from(neural_sde::Error::Training(format!(
+            "{}; the best model so far was written to {}",
+            f.message,
+            a.out.display()
+        ))));
+    }
+    let report = report.ok_or_else(|| Failure::input("training produced no report"))?;
+    let state = trainer.state();
+    let how = match report.termination {
+        Termination::MaxEpochs => "ran all epochs",
+        Termination::EarlyStopped => "stopped early (validation ELBO no longer improving)",
+        Termination::TimeBudget => "stopped at the time budget",
+    };
+    let rows = table.n_rows();
+    println!(
+        "fitted {dims} columns of {rows} rows in {:.1} s: {how} after {} epochs; kept epoch {}",
+        report.seconds, report.epochs, report.best_epoch
+    );
+    if let Some(best) = state.best_elbo {
+        let what = if a.validation_fraction > 0.0 {
+            "validation"
+        } else {
+            "training"
+        };
+        println!(
+            "best {what} ELBO per dimension: {:.4} nats (data units)",
+            (best + jac) / dims as f64
+        );
+    }
+    println!("model written to {}", a.out.display());
+    Ok(())
+}

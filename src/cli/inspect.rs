@@ -1,0 +1,64 @@
+//! `neural-sde inspect`.
+
+use std::path::PathBuf;
+
+use clap::Args;
+
+use super::Failure;
+
+#[derive(Debug, Args)]
+pub struct InspectArgs {
+    /// Model written by `neural-sde fit`.
+    model: PathBuf,
+}
+
+pub fn run(a: InspectArgs) -> Result<(), Failure> {
+    let info = neural_sde::checkpoint::inspect(&a.model)?;
+    println!("file           {}", a.model.display());
+    println!(
+        "written by     neural-sde {} (format {} v{})",
+        info.crate_version,
+        neural_sde::checkpoint::FORMAT,
+        neural_sde::checkpoint::FORMAT_VERSION
+    );
+    println!("columns        {}", info.columns.len());
+    println!("  {:<24} {:>14} {:>14}", "name", "mean", "scale");
+    for (j, c) in info.columns.iter().enumerate() {
+        println!(
+            "  {:<24} {:>14.6} {:>14.6}",
+            c, info.scaler.mean[j], info.scaler.scale[j]
+        );
+    }
+    println!("parameters     {}", info.parameters);
+    println!(
+        "model          {}",
+        serde_json::to_string(&info.model_config).unwrap_or_default()
+    );
+    match (&info.train_config, &info.state) {
+        (Some(tc), Some(st)) => {
+            println!(
+                "training       {}",
+                serde_json::to_string(tc).unwrap_or_default()
+            );
+            let d = info.columns.len().max(1) as f64;
+            let jac = info.scaler.log_jacobian();
+            println!(
+                "progress       {} epochs, {} steps, ended: {}",
+                st.epoch,
+                st.step,
+                st.finished
+                    .map(|t| format!("{t:?}"))
+                    .unwrap_or_else(|| "no (resumable)".into())
+            );
+            if let Some(b) = st.best_elbo {
+                println!(
+                    "best ELBO      {:.4} nats per dimension (data units), epoch {}",
+                    (b + jac) / d,
+                    st.best_epoch
+                );
+            }
+        }
+        _ => println!("training       no training state stored"),
+    }
+    Ok(())
+}

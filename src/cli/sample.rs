@@ -1,0 +1,56 @@
+//! `neural-sde sample`.
+
+use std::path::PathBuf;
+
+use clap::Args;
+use neural_sde::TabularModel;
+
+use super::{check_output, load_table, positive_usize, Failure};
+
+#[derive(Debug, Args)]
+pub struct SampleArgs {
+    /// Model written by `neural-sde fit`.
+    model: PathBuf,
+    /// Number of rows to generate.
+    #[arg(long, value_parser = positive_usize)]
+    rows: usize,
+    /// Where to write the rows (CSV with the model's column names).
+    #[arg(long)]
+    out: PathBuf,
+    /// Seed of the generated rows.
+    #[arg(long, default_value_t = 0)]
+    seed: u64,
+    /// Also draw histograms and pairwise scatter plots of the first four columns (SVG).
+    #[arg(long)]
+    plot: Option<PathBuf>,
+    /// Table to draw beside the generated rows in the plot (e.g. the training data).
+    #[arg(long)]
+    data: Option<PathBuf>,
+    /// Draw the built-in demo table beside the generated rows.
+    #[arg(long)]
+    demo: bool,
+}
+
+pub fn run(a: SampleArgs) -> Result<(), Failure> {
+    check_output(&a.out, "--out")?;
+    if let Some(p) = &a.plot {
+        check_output(p, "--plot")?;
+    }
+    let model = TabularModel::load(&a.model)?;
+    let reference = if a.data.is_some() || a.demo {
+        Some(load_table(
+            a.data.as_deref(),
+            a.demo,
+            Some(model.columns()),
+        )?)
+    } else {
+        None
+    };
+    let rows = model.generate(a.rows, a.seed)?;
+    rows.write_csv(&a.out)?;
+    if let Some(p) = &a.plot {
+        neural_sde::plot::pairs_svg(&rows, reference.as_ref(), 4, p)?;
+    }
+    println!("{} rows written to {}", rows.n_rows(), a.out.display());
+    Ok(())
+}

@@ -1,0 +1,310 @@
+//! SVG plots: training curves, samples beside data, and weighted samples over a density.
+//!
+//! Text is left to the SVG viewer (no fonts are bundled), so the files stay small and
+//! portable.
+
+use std::path::Path;
+
+use plotters::prelude::*;
+
+use crate::data::Table;
+use crate::error::{Error, Result};
+use crate::train::History;
+
+fn plot_err(e: impl std::fmt::Display) -> Error {
+    Error::Training(format!("cannot draw the plot: {e}"))
+}
+
+fn finish(svg: String, path: &Path) -> Result<()> {
+    crate::checkpoint::write_atomic(path, svg.as_bytes())
+}
+
+fn range(v: impl Iterator<Item = f64>) -> (f64, f64) {
+    let (mut lo, mut hi) = (f64::INFINITY, f64::NEG_INFINITY);
+    for x in v.filter(|x| x.is_finite()) {
+        lo = lo.min(x);
+        hi = hi.max(x);
+    }
+    if !lo.is_finite() {
+        return (0.0, 1.0);
+    }
+    let pad = ((hi - lo) * 0.05).max(1e-9);
+    (lo - pad, hi + pad)
+}
+
+/// Train and validation ELBO per epoch (per row divided by `dims`, standardised units).
+///
+/// # Errors
+/// [`Error::Io`] if the file cannot be written.
+pub fn elbo_curve_svg(history: &History, dims: usize, path: impl AsRef<Path>) -> Result<()> {
+    let d = dims.max(1) as f64;
+    let train: Vec<(f64, f64)> = history
+        .epochs
+        .iter()
+        .map(|r| (r.epoch as f64, r.train_elbo / d))
+        .collect();
+    let val: Vec<(f64, f64)> = history
+        .epochs
+        .iter()
+        .filter_map(|r| r.val_elbo.map(|v| (r.epoch as f64, v / d)))
+        .collect();
+    let (x0, x1) = range(train.iter().map(|p| p.0).chain([0.0]));
+    // Clip the first epochs' very low values so the curve's end stays readable.
+    let tail: Vec<f64> = train
+        .iter()
+        .chain(&val)
+        .skip(train.len() / 10)
+        .map(|p| p.1)
+        .collect();
+    let (y0, y1) = range(tail.into_iter());
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (720, 440)).into_drawing_area();
+        root.fill(&WHITE).map_err(plot_err)?;
+        let mut chart = ChartBuilder::on(&root)
+            .caption(
+                "ELBO per dimension by epoch (standardised units)",
+                ("sans-serif", 18),
+            )
+            .margin(12)
+            .x_label_area_size(36)
+            .y_label_area_size(56)
+            .build_cartesian_2d(x0..x1, y0..y1)
+            .map_err(plot_err)?;
+        chart
+            .configure_mesh()
+            .x_desc("epoch")
+            .y_desc("ELBO / dimension (nats)")
+            .draw()
+            .map_err(plot_err)?;
+        chart
+            .draw_series(LineSeries::new(train.iter().copied(), BLUE.stroke_width(2)))
+            .map_err(plot_err)?
+            .label("training")
+            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLUE));
+        if !val.is_empty() {
+            chart
+                .draw_series(LineSeries::new(val.iter().copied(), RED.stroke_width(2)))
+                .map_err(plot_err)?
+                .label("validation")
+                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], RED));
+        }
+        chart
+            .configure_series_labels()
+            .border_style(BLACK)
+            .background_style(WHITE.mix(0.8))
+            .position(SeriesLabelPosition::LowerRight)
+            .draw()
+            .map_err(plot_err)?;
+        root.present().map_err(plot_err)?;
+    }
+    finish(svg, path.as_ref())
+}
+
+fn histogram(values: &[f64], lo: f64, hi: f64, bins: usize) -> Vec<f64> {
+    let mut h = vec![0.0; bins];
+    let w = (hi - lo) / bins as f64;
+    for &v in values {
+        let i = (((v - lo) / w).floor() as isize).clamp(0, bins as isize - 1) as usize;
+        h[i] += 1.0;
+    }
+    let n = values.len().max(1) as f64;
+    h.iter().map(|c| c / (n * w)).collect()
+}
+
+/// Marginal histograms (diagonal) and pairwise scatter plots (off-diagonal) of up to the
+/// first `max_columns` columns: generated rows in blue, `data` (if given) in grey.
+///
+/// # Errors
+/// [`Error::Io`] if the file cannot be written.
+pub fn pairs_svg(
+    samples: &Table,
+    data: Option<&Table>,
+    max_columns: usize,
+    path: impl AsRef<Path>,
+) -> Result<()> {
+    let k = samples.n_cols().min(max_columns).max(1);
+    let cell = 220u32;
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (cell * k as u32, cell * k as u32 + 30))
+            .into_drawing_area();
+        root.fill(&WHITE).map_err(plot_err)?;
+        let (title, body) = root.split_vertically(30);
+        title
+            .draw(&Text::new(
+                "generated rows (blue) beside the data (grey)",
+                (10, 8),
+                ("sans-serif", 16).into_font(),
+            ))
+            .map_err(plot_err)?;
+        let cells = body.split_evenly((k, k));
+        let cols: Vec<Vec<f64>> = (0..k).map(|j| samples.column(j)).collect();
+        let dcols: Option<Vec<Vec<f64>>> = data.map(|d| (0..k).map(|j| d.column(j)).collect());
+        let ranges: Vec<(f64, f64)> = (0..k)
+            .map(|j| {
+                let extra = dcols.as_ref().map(|c| c[j].clone()).unwrap_or_default();
+                range(cols[j].iter().copied().chain(extra))
+            })
+            .collect();
+        // At most 500 points per cloud keep the file small.
+        let thin = |n: usize| n.div_ceil(500).max(1);
+        for (idx, area) in cells.iter().enumerate() {
+            let (i, j) = (idx / k, idx % k);
+            let (x0, x1) = ranges[j];
+            if i == j {
+                let bins = 30;
+                let hs = histogram(&cols[j], x0, x1, bins);
+                let hd = dcols
+                    .as_ref()
+                    .map(|c| histogram(&c[j], x0, x1, bins))
+                    .unwrap_or_default();
+                let top = hs.iter().chain(&hd).copied().fold(0.0, f64::max) * 1.1 + 1e-12;
+                let mut chart = ChartBuilder::on(area)
+                    .margin(6)
+                    .caption(&samples.columns()[j], ("sans-serif", 13))
+                    .x_label_area_size(18)
+                    .y_label_area_size(10)
+                    .build_cartesian_2d(x0..x1, 0.0..top)
+                    .map_err(plot_err)?;
+                chart
+                    .configure_mesh()
+                    .disable_mesh()
+                    .y_labels(0)
+                    .x_labels(3)
+                    .draw()
+                    .map_err(plot_err)?;
+                let w = (x1 - x0) / bins as f64;
+                let step = |h: &[f64]| -> Vec<(f64, f64)> {
+                    h.iter()
+                        .enumerate()
+                        .flat_map(|(b, &v)| [(x0 + b as f64 * w, v), (x0 + (b + 1) as f64 * w, v)])
+                        .collect()
+                };
+                if !hd.is_empty() {
+                    chart
+                        .draw_series(LineSeries::new(step(&hd), BLACK.mix(0.5).stroke_width(2)))
+                        .map_err(plot_err)?;
+                }
+                chart
+                    .draw_series(LineSeries::new(step(&hs), BLUE.stroke_width(2)))
+                    .map_err(plot_err)?;
+            } else {
+                let (y0, y1) = ranges[i];
+                let mut chart = ChartBuilder::on(area)
+                    .margin(6)
+                    .x_label_area_size(18)
+                    .y_label_area_size(30)
+                    .build_cartesian_2d(x0..x1, y0..y1)
+                    .map_err(plot_err)?;
+                chart
+                    .configure_mesh()
+                    .disable_mesh()
+                    .x_labels(3)
+                    .y_labels(3)
+                    .draw()
+                    .map_err(plot_err)?;
+                if let Some(dc) = &dcols {
+                    let s = thin(dc[j].len());
+                    chart
+                        .draw_series(
+                            dc[j]
+                                .iter()
+                                .zip(&dc[i])
+                                .step_by(s)
+                                .map(|(&x, &y)| Circle::new((x, y), 1, BLACK.mix(0.35).filled())),
+                        )
+                        .map_err(plot_err)?;
+                }
+                let s = thin(cols[j].len());
+                chart
+                    .draw_series(
+                        cols[j]
+                            .iter()
+                            .zip(&cols[i])
+                            .step_by(s)
+                            .map(|(&x, &y)| Circle::new((x, y), 1, BLUE.mix(0.45).filled())),
+                    )
+                    .map_err(plot_err)?;
+            }
+        }
+        root.present().map_err(plot_err)?;
+    }
+    finish(svg, path.as_ref())
+}
+
+/// A 2-D density as filled bands (darker = higher; ten levels of the normalised density)
+/// with weighted samples on top (dot opacity proportional to the normalised weight).
+///
+/// `log_density` is evaluated on a 120 × 120 grid over `[lo, hi]²`.
+///
+/// # Errors
+/// [`Error::Io`] if the file cannot be written.
+pub fn density_samples_svg(
+    log_density: &dyn Fn(f64, f64) -> f64,
+    samples: &[Vec<f64>],
+    log_weights: &[f64],
+    (lo, hi): (f64, f64),
+    title: &str,
+    path: impl AsRef<Path>,
+) -> Result<()> {
+    let n = 120;
+    let w = (hi - lo) / n as f64;
+    let mut grid = vec![0.0; n * n];
+    for a in 0..n {
+        for b in 0..n {
+            grid[a * n + b] = log_density(lo + (a as f64 + 0.5) * w, lo + (b as f64 + 0.5) * w);
+        }
+    }
+    let max = grid.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let lw_max = log_weights
+        .iter()
+        .copied()
+        .fold(f64::NEG_INFINITY, f64::max);
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (560, 560)).into_drawing_area();
+        root.fill(&WHITE).map_err(plot_err)?;
+        let mut chart = ChartBuilder::on(&root)
+            .caption(title, ("sans-serif", 16))
+            .margin(10)
+            .x_label_area_size(30)
+            .y_label_area_size(40)
+            .build_cartesian_2d(lo..hi, lo..hi)
+            .map_err(plot_err)?;
+        chart
+            .configure_mesh()
+            .disable_mesh()
+            .draw()
+            .map_err(plot_err)?;
+        chart
+            .draw_series((0..n * n).filter_map(|k| {
+                let level = ((grid[k] - max).exp() * 10.0).floor() / 10.0;
+                (level > 0.0).then(|| {
+                    let (a, b) = (k / n, k % n);
+                    let (x, y) = (lo + a as f64 * w, lo + b as f64 * w);
+                    Rectangle::new(
+                        [(x, y), (x + w, y + w)],
+                        RGBColor(255, 140, 0).mix(0.15 + 0.6 * level).filled(),
+                    )
+                })
+            }))
+            .map_err(plot_err)?;
+        let step = (samples.len() / 3000).max(1);
+        chart
+            .draw_series(
+                samples
+                    .iter()
+                    .zip(log_weights)
+                    .step_by(step)
+                    .filter_map(|(x, lw)| {
+                        let a = (lw - lw_max).exp();
+                        (x.len() >= 2)
+                            .then(|| Circle::new((x[0], x[1]), 2, BLUE.mix(0.1 + 0.8 * a).filled()))
+                    }),
+            )
+            .map_err(plot_err)?;
+        root.present().map_err(plot_err)?;
+    }
+    finish(svg, path.as_ref())
+}

@@ -1,0 +1,342 @@
+//! Checkpoints: round trip, exact resumption, interrupted saves, corrupt files, and plain
+//! safetensors compatibility.
+use std::collections::HashMap;
+use std::path::PathBuf;
+
+use neural_sde::*;
+
+fn table() -> Table {
+    // Demo rows from a fixed generator (the checks compare the code with itself across a
+    // save/load boundary, not with a reference value).
+    let z = standard_normals(&mut generator(3, 0), 300 * 3);
+    let rows = z
+        .chunks_exact(3)
+        .map(|e| vec![e[0], e[0] * e[0] + 0.3 * e[1], e[2] - 0.5 * e[0]])
+        .collect();
+    Table::new(vec!["a".into(), "b".into(), "c".into()], rows).unwrap()
+}
+
+fn cfg() -> (LatentConfig, TrainConfig) {
+    let m = LatentConfig {
+        solver: SolverConfig {
+            n_steps: 8,
+            ..Default::default()
+        },
+        ..Default::default()
+    };
+    let t = TrainConfig {
+        epochs: 4,
+        patience: 100,
+        min_steps_per_epoch: 5,
+        batch_size: 32,
+        ..Default::default()
+    };
+    (m, t)
+}
+
+fn dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("neural-sde-ck-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+fn weights(m: &TabularModel) -> Vec<(String, Vec<u32>)> {
+    sorted_vars(m.latent().varmap())
+        .unwrap()
+        .into_iter()
+        .map(|(n, v)| {
+            (
+                n,
+                v.as_tensor()
+                    .flatten_all()
+                    .unwrap()
+                    .to_vec1::<f32>()
+                    .unwrap()
+                    .iter()
+                    .map(|x| x.to_bits())
+                    .collect(),
+            )
+        })
+        .collect()
+}
+
+fn bits(v: &[f64]) -> Vec<u64> {
+    v.iter().map(|x| x.to_bits()).collect()
+}
+
+#[test]
+fn round_trip_gives_identical_outputs() {
+    let t = table();
+    let (m, c) = cfg();
+    let mut tr = Trainer::new(&t, m, TrainConfig { epochs: 2, ..c }).unwrap();
+    tr.fit().unwrap();
+    let d = dir("roundtrip");
+    let p = d.join("model.safetensors");
+    tr.save(&p).unwrap();
+    let before = tr.into_model();
+    let after = TabularModel::load(&p).unwrap();
+    assert_eq!(weights(&before), weights(&after));
+    assert_eq!(before.columns(), after.columns());
+    assert_eq!(before.scaler(), after.scaler());
+    assert_eq!(before.history(), after.history());
+    let e1 = before.evaluate(&t, 4, 5).unwrap();
+    let e2 = after.evaluate(&t, 4, 5).unwrap();
+    assert_eq!(bits(&e1.loglik_rows), bits(&e2.loglik_rows));
+    let g1 = before.generate(50, 9).unwrap();
+    let g2 = after.generate(50, 9).unwrap();
+    assert_eq!(bits(g1.values()), bits(g2.values()));
+    // A model saved without training state loads too, and cannot be resumed.
+    let p2 = d.join("inference.safetensors");
+    after.save(&p2).unwrap();
+    assert_eq!(weights(&TabularModel::load(&p2).unwrap()), weights(&after));
+    let e = Trainer::resume(&p2, &t).unwrap_err().to_string();
+    assert!(e.contains("no training state"), "{e}");
+}
+
+#[test]
+fn resuming_continues_the_same_loss_sequence_bit_for_bit() {
+    let t = table();
+    let (m, c) = cfg();
+    let mut full = Trainer::new(&t, m.clone(), c.clone()).unwrap();
+    full.fit().unwrap();
+    let mut first = Trainer::new(&t, m, c).unwrap();
+    let started = std::time::Instant::now();
+    first.run_epoch(started).unwrap();
+    first.run_epoch(started).unwrap();
+    let d = dir("resume");
+    let p = d.join("ck.safetensors");
+    first.save(&p).unwrap();
+    drop(first);
+    let mut resumed = Trainer::resume(&p, &t).unwrap();
+    resumed.fit().unwrap();
+    let a = &full.history().epochs;
+    let b = &resumed.history().epochs;
+    assert_eq!(a.len(), 4);
+    assert_eq!(a.len(), b.len());
+    for (x, y) in a.iter().zip(b) {
+        assert_eq!(
+            x.train_elbo.to_bits(),
+            y.train_elbo.to_bits(),
+            "epoch {}",
+            x.epoch
+        );
+        assert_eq!(
+            x.val_elbo.map(f64::to_bits),
+            y.val_elbo.map(f64::to_bits),
+            "epoch {}",
+            x.epoch
+        );
+        assert_eq!(x.grad_norm.to_bits(), y.grad_norm.to_bits());
+        assert_eq!(x.learning_rate.to_bits(), y.learning_rate.to_bits());
+    }
+    assert_eq!(weights(full.model()), weights(resumed.model()));
+    // Resuming on another table is refused.
+    let other = t.take_rows(&(0..299).collect::<Vec<_>>()).unwrap();
+    let e = Trainer::resume(&p, &other).unwrap_err().to_string();
+    assert!(e.contains("not the table"), "{e}");
+}
+
+/// Child side of the interrupted-save test: saves a different model over and over until
+/// killed. Runs only when the parent sets the variable.
+#[test]
+fn child_saver() {
+    let Ok(path) = std::env::var("NEURAL_SDE_CHILD_SAVE") else {
+        return;
+    };
+    let t = table();
+    let (m, c) = cfg();
+    let m = LatentConfig {
+        control: MlpConfig {
+            width: 256,
+            ..Default::default()
+        },
+        ..m
+    };
+    let tr = Trainer::new(&t, m, TrainConfig { seed: 77, ..c }).unwrap();
+    loop {
+        tr.save(&path).unwrap();
+    }
+}
+
+#[test]
+fn a_save_killed_midway_leaves_a_complete_file() {
+    let t = table();
+    let (m, c) = cfg();
+    let m = LatentConfig {
+        control: MlpConfig {
+            width: 256,
+            ..Default::default()
+        },
+        ..m
+    };
+    let d = dir("kill");
+    let p = d.join("ck.safetensors");
+    let old = Trainer::new(&t, m.clone(), c.clone()).unwrap();
+    old.save(&p).unwrap();
+    let old_w = weights(old.model());
+    let new_w = weights(
+        Trainer::new(&t, m, TrainConfig { seed: 77, ..c })
+            .unwrap()
+            .model(),
+    );
+    let exe = std::env::current_exe().unwrap();
+    let mut saw_new = 0;
+    for delay_ms in [30u64, 55, 80, 120, 170] {
+        let mut child = std::process::Command::new(&exe)
+            .args([
+                "--exact",
+                "child_saver",
+                "--nocapture",
+                "--test-threads",
+                "1",
+            ])
+            .env("NEURAL_SDE_CHILD_SAVE", &p)
+            .stdout(std::process::Stdio::null())
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .unwrap();
+        std::thread::sleep(std::time::Duration::from_millis(delay_ms));
+        child.kill().unwrap(); // SIGKILL: no cleanup runs
+        child.wait().unwrap();
+        let loaded = TabularModel::load(&p).expect("the checkpoint must stay loadable");
+        let w = weights(&loaded);
+        assert!(
+            w == old_w || w == new_w,
+            "the file holds neither the old nor the new model"
+        );
+        saw_new += usize::from(w == new_w);
+    }
+    // The child did write (otherwise the test would prove nothing).
+    assert!(saw_new > 0, "the child never completed a save");
+}
+
+fn rewrite(
+    src: &std::path::Path,
+    dst: &std::path::Path,
+    edit: impl Fn(&mut HashMap<String, String>, &mut Vec<(String, candle_core::Tensor)>),
+) {
+    let bytes = std::fs::read(src).unwrap();
+    let (_, md) = safetensors::SafeTensors::read_metadata(&bytes).unwrap();
+    let mut meta = md.metadata().clone().unwrap();
+    let mut tensors: Vec<(String, candle_core::Tensor)> =
+        candle_core::safetensors::load_buffer(&bytes, &candle_core::Device::Cpu)
+            .unwrap()
+            .into_iter()
+            .collect();
+    tensors.sort_by(|a, b| a.0.cmp(&b.0));
+    edit(&mut meta, &mut tensors);
+    safetensors::tensor::serialize_to_file(tensors, Some(meta), dst).unwrap();
+}
+
+#[test]
+fn bad_files_are_errors_that_say_what_is_wrong() {
+    let t = table();
+    let (m, c) = cfg();
+    let tr = Trainer::new(&t, m, TrainConfig { epochs: 1, ..c }).unwrap();
+    let d = dir("bad");
+    let good = d.join("good.safetensors");
+    tr.save(&good).unwrap();
+    let bytes = std::fs::read(&good).unwrap();
+    let check = |name: &str, data: &[u8], want: &str| {
+        let p = d.join(name);
+        std::fs::write(&p, data).unwrap();
+        let e = TabularModel::load(&p).unwrap_err();
+        assert!(matches!(e, Error::Checkpoint { .. }), "{name}: {e}");
+        assert!(e.to_string().contains(want), "{name}: {e}");
+    };
+    check("truncated", &bytes[..bytes.len() / 2], "truncated");
+    check("short", &bytes[..5], "truncated");
+    check(
+        "garbage",
+        b"this is not a model at all, just some text",
+        "not a valid safetensors",
+    );
+    check("empty", b"", "not a valid safetensors");
+    let missing = TabularModel::load(d.join("nope.safetensors"))
+        .unwrap_err()
+        .to_string();
+    assert!(missing.contains("not found"), "{missing}");
+
+    let p = d.join("version.safetensors");
+    rewrite(&good, &p, |meta, _| {
+        meta.insert("format_version".into(), "99".into());
+    });
+    let e = TabularModel::load(&p).unwrap_err().to_string();
+    assert!(e.contains("\"99\"") && e.contains("version 1"), "{e}");
+
+    let p = d.join("foreign.safetensors");
+    rewrite(&good, &p, |meta, _| {
+        meta.remove("format");
+    });
+    assert!(TabularModel::load(&p)
+        .unwrap_err()
+        .to_string()
+        .contains("not written by neural-sde"));
+
+    let p = d.join("shape.safetensors");
+    rewrite(&good, &p, |_, ts| {
+        let i = ts
+            .iter()
+            .position(|(n, _)| n == "decoder.linear.bias")
+            .unwrap();
+        ts[i].1 = candle_core::Tensor::zeros(5, candle_core::DType::F32, &candle_core::Device::Cpu)
+            .unwrap();
+    });
+    let e = TabularModel::load(&p).unwrap_err().to_string();
+    assert!(
+        e.contains("decoder.linear.bias") && e.contains("[5]") && e.contains("[3]"),
+        "{e}"
+    );
+
+    let p = d.join("dtype.safetensors");
+    rewrite(&good, &p, |_, ts| {
+        let i = ts.iter().position(|(n, _)| n == "prior.out.bias").unwrap();
+        ts[i].1 = ts[i].1.to_dtype(candle_core::DType::F64).unwrap();
+    });
+    let e = TabularModel::load(&p).unwrap_err().to_string();
+    assert!(e.contains("prior.out.bias") && e.contains("F64"), "{e}");
+
+    let p = d.join("missing.safetensors");
+    rewrite(&good, &p, |_, ts| {
+        ts.retain(|(n, _)| n != "prior.layer0.weight")
+    });
+    let e = TabularModel::load(&p).unwrap_err().to_string();
+    assert!(e.contains("prior.layer0.weight is missing"), "{e}");
+
+    let p = d.join("extra.safetensors");
+    rewrite(&good, &p, |_, ts| {
+        ts.push((
+            "stray".into(),
+            candle_core::Tensor::zeros(2, candle_core::DType::F32, &candle_core::Device::Cpu)
+                .unwrap(),
+        ))
+    });
+    let e = TabularModel::load(&p).unwrap_err().to_string();
+    assert!(e.contains("unexpected tensor stray"), "{e}");
+}
+
+#[test]
+fn other_safetensors_readers_read_the_file() {
+    let t = table();
+    let (m, c) = cfg();
+    let tr = Trainer::new(&t, m, TrainConfig { epochs: 1, ..c }).unwrap();
+    let d = dir("plain");
+    let p = d.join("m.safetensors");
+    tr.save(&p).unwrap();
+    // The reference reader of the format (the `safetensors` crate) and candle's loader.
+    let bytes = std::fs::read(&p).unwrap();
+    let st = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+    let names = st.names();
+    assert!(names.contains(&"decoder.linear.weight"));
+    assert!(names.contains(&"optim.m.decoder.linear.weight"));
+    assert!(names.contains(&"best.decoder.linear.weight"));
+    let (_, md) = safetensors::SafeTensors::read_metadata(&bytes).unwrap();
+    let meta = md.metadata().clone().unwrap();
+    assert_eq!(meta["format"], "neural-sde-model");
+    let header: serde_json::Value = serde_json::from_str(&meta["header"]).unwrap();
+    assert_eq!(header["columns"], serde_json::json!(["a", "b", "c"]));
+    assert!(header["state"]["data_rng"].is_object());
+    let loaded = candle_core::safetensors::load(&p, &candle_core::Device::Cpu).unwrap();
+    assert_eq!(loaded["decoder.linear.weight"].dims(), &[3, 3]);
+}

@@ -1,0 +1,254 @@
+//! The command-line tool, run as a user would: on the demo data and on bad inputs.
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn bin() -> Command {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_neural-sde"));
+    c.env("RAYON_NUM_THREADS", "1");
+    c
+}
+
+fn dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("neural-sde-cli-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+fn run(c: &mut Command) -> Output {
+    c.output().unwrap()
+}
+
+fn stderr(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+/// Exit status 2, a single `error:` line, no panic or backtrace.
+fn assert_input_error(o: &Output, contains: &[&str]) {
+    let e = stderr(o);
+    assert_eq!(o.status.code(), Some(2), "stderr: {e}");
+    let lines: Vec<&str> = e.lines().filter(|l| !l.trim().is_empty()).collect();
+    assert_eq!(lines.len(), 1, "expected one line, got: {e}");
+    assert!(lines[0].starts_with("error:"), "{e}");
+    assert!(!e.contains("panicked") && !e.contains("backtrace"), "{e}");
+    for c in contains {
+        assert!(e.contains(c), "missing '{c}' in: {e}");
+    }
+}
+
+fn files(d: &Path) -> Vec<String> {
+    let mut v: Vec<String> = std::fs::read_dir(d)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    v.sort();
+    v
+}
+
+#[test]
+fn fit_evaluate_sample_inspect_on_the_demo() {
+    let d = dir("demo");
+    let model = d.join("demo.safetensors");
+    let o = run(bin()
+        .args(["fit", "--demo", "--epochs", "2", "--out"])
+        .arg(&model)
+        .arg("--history")
+        .arg(d.join("h.csv"))
+        .arg("--plot")
+        .arg(d.join("curve.svg")));
+    assert!(o.status.success(), "{}", stderr(&o));
+    let out = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        out.contains("best validation ELBO per dimension") && out.contains("model written to"),
+        "{out}"
+    );
+    assert_eq!(files(&d), vec!["curve.svg", "demo.safetensors", "h.csv"]);
+    assert!(std::fs::read_to_string(d.join("curve.svg"))
+        .unwrap()
+        .starts_with("<svg"));
+
+    let o = run(bin()
+        .arg("evaluate")
+        .arg(&model)
+        .args(["--demo", "--paths", "4", "--json"]));
+    assert!(o.status.success(), "{}", stderr(&o));
+    let line = String::from_utf8_lossy(&o.stdout);
+    assert_eq!(line.trim().lines().count(), 1);
+    let v: serde_json::Value = serde_json::from_str(line.trim()).unwrap();
+    for k in [
+        "rows",
+        "dims",
+        "paths",
+        "elbo_per_row",
+        "elbo_per_dim",
+        "loglik_per_row",
+        "loglik_per_dim",
+    ] {
+        assert!(v.get(k).is_some(), "missing {k}");
+    }
+    assert_eq!(v["rows"], 2000);
+    assert_eq!(v["dims"], 5);
+    assert_eq!(v["paths"], 4);
+    assert!(v["loglik_per_row"].as_f64().unwrap() >= v["elbo_per_row"].as_f64().unwrap() - 1e-9);
+
+    let samples = d.join("s.csv");
+    let o = run(bin()
+        .arg("sample")
+        .arg(&model)
+        .args(["--rows", "300", "--seed", "5", "--demo", "--out"])
+        .arg(&samples)
+        .arg("--plot")
+        .arg(d.join("pairs.svg")));
+    assert!(o.status.success(), "{}", stderr(&o));
+    let csv = std::fs::read_to_string(&samples).unwrap();
+    assert!(csv.starts_with("light_klux,temperature_c,humidity_pct,co2_ppm,growth_um_h\n"));
+    assert_eq!(csv.lines().count(), 301);
+    // The same seed gives the same rows.
+    let again = d.join("s2.csv");
+    assert!(run(bin()
+        .arg("sample")
+        .arg(&model)
+        .args(["--rows", "300", "--seed", "5", "--out"])
+        .arg(&again))
+    .status
+    .success());
+    assert_eq!(csv, std::fs::read_to_string(&again).unwrap());
+
+    let o = run(bin().arg("inspect").arg(&model));
+    assert!(o.status.success());
+    let out = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        out.contains("co2_ppm") && out.contains("best ELBO") && out.contains("2 epochs"),
+        "{out}"
+    );
+
+    // Resume from the checkpoint for one more epoch.
+    let more = d.join("more.safetensors");
+    let o = run(bin()
+        .args(["fit", "--demo", "--epochs", "3", "--resume"])
+        .arg(&model)
+        .arg("--out")
+        .arg(&more));
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert!(
+        String::from_utf8_lossy(&run(bin().arg("inspect").arg(&more)).stdout).contains("3 epochs")
+    );
+}
+
+#[test]
+fn bad_inputs_exit_2_with_one_line_and_write_nothing() {
+    let d = dir("bad");
+    let out = d.join("m.safetensors");
+    let fit = |args: &[&str]| {
+        let mut c = bin();
+        c.arg("fit").args(args).arg("--out").arg(&out);
+        run(&mut c)
+    };
+    assert_input_error(
+        &fit(&["/no/such/file.csv"]),
+        &["/no/such/file.csv", "not found"],
+    );
+    std::fs::write(d.join("text.csv"), "a,b\n1,2\n3,x\n").unwrap();
+    assert_input_error(
+        &fit(&[d.join("text.csv").to_str().unwrap()]),
+        &["line 3", "column 'b'"],
+    );
+    std::fs::write(
+        d.join("ok.csv"),
+        (0..200)
+            .map(|i| format!("{},{}\n", i, (i * 7) % 13))
+            .fold("a,b\n".to_string(), |s, l| s + &l),
+    )
+    .unwrap();
+    let ok = d.join("ok.csv");
+    assert_input_error(
+        &fit(&[ok.to_str().unwrap(), "--columns", "a,zz"]),
+        &["unknown column 'zz'"],
+    );
+    assert_input_error(&fit(&[]), &["--demo"]);
+    assert_input_error(&fit(&["--demo", ok.to_str().unwrap()]), &["not both"]);
+    for (opt, val) in [
+        ("--epochs", "0"),
+        ("--learning-rate", "-1"),
+        ("--validation-fraction", "1.5"),
+        ("--steps", "abc"),
+        ("--time-budget", "0"),
+    ] {
+        assert_input_error(&fit(&["--demo", opt, val]), &[opt, "--help"]);
+    }
+    assert_input_error(
+        &fit(&[ok.to_str().unwrap(), "--batch-size", "500"]),
+        &["batch size 500"],
+    );
+    // Output into a folder that does not exist.
+    let o = run(bin().args(["fit", "--demo", "--out", "/no/such/dir/m.safetensors"]));
+    assert_input_error(&o, &["does not exist"]);
+    assert_eq!(
+        files(&d),
+        vec!["ok.csv", "text.csv"],
+        "an output file was left behind"
+    );
+
+    // A model, then evaluation on data without its columns, and corrupt checkpoints.
+    let model = d.join("good.safetensors");
+    assert!(run(bin()
+        .arg("fit")
+        .arg(&ok)
+        .args(["--epochs", "1", "--out"])
+        .arg(&model))
+    .status
+    .success());
+    std::fs::write(d.join("other.csv"), "x,y\n1,2\n3,4\n").unwrap();
+    let o = run(bin().arg("evaluate").arg(&model).arg(d.join("other.csv")));
+    assert_input_error(&o, &["unknown column 'a'"]);
+    let bytes = std::fs::read(&model).unwrap();
+    std::fs::write(d.join("cut.safetensors"), &bytes[..bytes.len() / 3]).unwrap();
+    let o = run(bin()
+        .arg("evaluate")
+        .arg(d.join("cut.safetensors"))
+        .arg(&ok));
+    assert_input_error(&o, &["cut.safetensors", "truncated"]);
+    let o = run(bin().arg("inspect").arg(d.join("text.csv")));
+    assert_input_error(&o, &["not a valid safetensors"]);
+    let samples = d.join("s.csv");
+    let o = run(bin()
+        .arg("sample")
+        .arg(d.join("cut.safetensors"))
+        .args(["--rows", "5", "--out"])
+        .arg(&samples));
+    assert_input_error(&o, &["truncated"]);
+    let o = run(bin()
+        .arg("sample")
+        .arg(&model)
+        .args(["--rows", "0", "--out"])
+        .arg(&samples));
+    assert_input_error(&o, &["--rows"]);
+    assert!(!samples.exists());
+}
+
+#[test]
+fn every_command_explains_its_options_and_defaults() {
+    for (cmd, must) in [
+        (
+            "fit",
+            vec![
+                "--time-budget",
+                "[default: 90]",
+                "--learning-rate",
+                "[default: 0.003]",
+                "--demo",
+                "synthetic",
+            ],
+        ),
+        ("evaluate", vec!["--paths", "[default: 128]", "--json"]),
+        ("sample", vec!["--rows", "--seed", "[default: 0]", "--plot"]),
+        ("inspect", vec!["Model written by"]),
+    ] {
+        let o = run(bin().args([cmd, "--help"]));
+        assert!(o.status.success());
+        let h = String::from_utf8_lossy(&o.stdout);
+        for m in must {
+            assert!(h.contains(m), "{cmd} --help lacks {m}: {h}");
+        }
+    }
+}
