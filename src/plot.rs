@@ -48,24 +48,44 @@ pub fn elbo_curve_svg(history: &History, dims: usize, path: impl AsRef<Path>) ->
         .iter()
         .filter_map(|r| r.val_elbo.map(|v| (r.epoch as f64, v / d)))
         .collect();
-    let (x0, x1) = range(train.iter().map(|p| p.0).chain([0.0]));
-    // Clip the first epochs' very low values so the curve's end stays readable.
-    let tail: Vec<f64> = train
-        .iter()
-        .chain(&val)
-        .skip(train.len() / 10)
-        .map(|p| p.1)
-        .collect();
-    let (y0, y1) = range(tail.into_iter());
+    let mut series = vec![("training", train)];
+    if !val.is_empty() {
+        series.push(("validation", val));
+    }
+    curves_svg(
+        "ELBO per dimension by epoch (standardised units)",
+        "epoch",
+        "ELBO / dimension (nats)",
+        &series,
+        path,
+    )
+}
+
+/// Line curves sharing one pair of axes, with a legend. The first tenth of each curve is
+/// left out of the vertical range so that early, very low values do not flatten the rest.
+///
+/// # Errors
+/// [`Error::Io`] if the file cannot be written.
+pub fn curves_svg(
+    title: &str,
+    x_label: &str,
+    y_label: &str,
+    series: &[(&str, Vec<(f64, f64)>)],
+    path: impl AsRef<Path>,
+) -> Result<()> {
+    let (x0, x1) = range(series.iter().flat_map(|(_, s)| s.iter().map(|p| p.0)));
+    let (y0, y1) = range(
+        series
+            .iter()
+            .flat_map(|(_, s)| s.iter().skip(s.len() / 10).map(|p| p.1)),
+    );
+    let colours = [BLUE, RED, GREEN, MAGENTA, CYAN];
     let mut svg = String::new();
     {
         let root = SVGBackend::with_string(&mut svg, (720, 440)).into_drawing_area();
         root.fill(&WHITE).map_err(plot_err)?;
         let mut chart = ChartBuilder::on(&root)
-            .caption(
-                "ELBO per dimension by epoch (standardised units)",
-                ("sans-serif", 18),
-            )
+            .caption(title, ("sans-serif", 18))
             .margin(12)
             .x_label_area_size(36)
             .y_label_area_size(56)
@@ -73,21 +93,17 @@ pub fn elbo_curve_svg(history: &History, dims: usize, path: impl AsRef<Path>) ->
             .map_err(plot_err)?;
         chart
             .configure_mesh()
-            .x_desc("epoch")
-            .y_desc("ELBO / dimension (nats)")
+            .x_desc(x_label)
+            .y_desc(y_label)
             .draw()
             .map_err(plot_err)?;
-        chart
-            .draw_series(LineSeries::new(train.iter().copied(), BLUE.stroke_width(2)))
-            .map_err(plot_err)?
-            .label("training")
-            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLUE));
-        if !val.is_empty() {
+        for (i, (name, pts)) in series.iter().enumerate() {
+            let c = colours[i % colours.len()];
             chart
-                .draw_series(LineSeries::new(val.iter().copied(), RED.stroke_width(2)))
+                .draw_series(LineSeries::new(pts.iter().copied(), c.stroke_width(2)))
                 .map_err(plot_err)?
-                .label("validation")
-                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], RED));
+                .label(*name)
+                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], c));
         }
         chart
             .configure_series_labels()
