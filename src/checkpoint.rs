@@ -192,12 +192,7 @@ fn read_header(path: &Path) -> Result<(Vec<u8>, Header)> {
         path: path.to_path_buf(),
         reason,
     };
-    let bytes = std::fs::read(path).map_err(|e| {
-        bad(match e.kind() {
-            std::io::ErrorKind::NotFound => "file not found; check the path".into(),
-            _ => format!("cannot read the file ({e})"),
-        })
-    })?;
+    let bytes = crate::error::read_file(path).map_err(bad)?;
     // Validates the whole layout, so a truncated file is caught here.
     safetensors::SafeTensors::deserialize(&bytes)
         .map_err(|e| bad(format!("not a valid safetensors file, or truncated ({e}); use a file written by `neural-sde fit`")))?;

@@ -2,7 +2,6 @@
 
 use std::path::Path;
 
-use candle_core::{Device, Tensor};
 use serde::{Deserialize, Serialize};
 
 use crate::data::{Standardizer, Table};
@@ -131,29 +130,13 @@ impl TabularModel {
         let table = self.matching(table)?;
         let z = self.scaler.transform(&table);
         let d = self.columns.len();
-        let dev = Device::Cpu;
-        let dtype = self.model.dtype();
         let mut rng = generator(seed, streams::EVAL);
         let chunk_rows = (8192 / paths).max(1);
         let (mut elbo_rows, mut loglik_rows) = (Vec::new(), Vec::new());
         let jac = self.scaler.log_jacobian();
         for chunk in z.chunks(chunk_rows * d) {
             let r = chunk.len() / d;
-            let mut rep = Vec::with_capacity(r * paths * d);
-            for row in chunk.chunks_exact(d) {
-                for _ in 0..paths {
-                    rep.extend_from_slice(row);
-                }
-            }
-            let y = Tensor::from_vec(rep, (r * paths, d), &dev)?.to_dtype(dtype)?;
-            let noise = self.model.config().solver.sample_noise(
-                &mut rng,
-                r * paths,
-                self.model.latent_dim(),
-                dtype,
-                &dev,
-            )?;
-            let terms = self.model.path_terms(&y, &noise)?;
+            let terms = self.model.posterior_terms(chunk, paths, &mut rng)?;
             for i in 0..r {
                 let lw = &terms.log_weight[i * paths..(i + 1) * paths];
                 let el = &terms.elbo[i * paths..(i + 1) * paths];

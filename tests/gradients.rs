@@ -163,32 +163,25 @@ fn sampler_gradient_reaches_every_control_parameter() {
         ..Default::default()
     };
     let mut s = Sampler::new(target, cfg).unwrap();
-    let before: Vec<Vec<f32>> = sorted_vars(s.varmap())
-        .unwrap()
-        .iter()
-        .map(|(_, v)| {
-            v.as_tensor()
-                .flatten_all()
-                .unwrap()
-                .to_vec1::<f32>()
-                .unwrap()
-        })
-        .collect();
+    let values = |s: &Sampler| -> Vec<Vec<f32>> {
+        sorted_vars(s.varmap())
+            .unwrap()
+            .iter()
+            .map(|(_, v)| {
+                v.as_tensor()
+                    .flatten_all()
+                    .unwrap()
+                    .to_vec1::<f32>()
+                    .unwrap()
+            })
+            .collect()
+    };
+    let before = values(&s);
     // The zero-initialised output layer gets a gradient at the first step; the hidden layers
     // at the second.
     s.step().unwrap();
     s.step().unwrap();
-    let after: Vec<Vec<f32>> = sorted_vars(s.varmap())
-        .unwrap()
-        .iter()
-        .map(|(_, v)| {
-            v.as_tensor()
-                .flatten_all()
-                .unwrap()
-                .to_vec1::<f32>()
-                .unwrap()
-        })
-        .collect();
+    let after = values(&s);
     for (i, (a, b)) in before.iter().zip(&after).enumerate() {
         assert_ne!(a, b, "parameter {i} did not move");
     }

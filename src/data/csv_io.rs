@@ -10,12 +10,7 @@ pub(super) fn read(path: &Path, select: Option<&[String]>) -> Result<Table> {
         path: path.to_path_buf(),
         reason,
     };
-    let bytes = std::fs::read(path).map_err(|e| {
-        err(match e.kind() {
-            std::io::ErrorKind::NotFound => "file not found; check the path".to_string(),
-            _ => format!("cannot read the file ({e}); check its permissions"),
-        })
-    })?;
+    let bytes = crate::error::read_file(path).map_err(err)?;
     if bytes.iter().all(|b| b.is_ascii_whitespace()) {
         return Err(err(
             "the file is empty; expected a header line naming the columns, then rows of numbers"

@@ -423,6 +423,45 @@ impl LatentModel {
         })
     }
 
+    /// Posterior terms for standardised `rows` (row-major, `D` columns), `paths` posterior
+    /// paths per row with noise from `rng`: each row is repeated `paths` times, consecutively,
+    /// so terms `i·paths .. (i+1)·paths` belong to row `i`. Callers stream long tables through
+    /// this in chunks.
+    ///
+    /// # Errors
+    /// [`Error::Shape`] if `rows` is not a multiple of `D`.
+    pub fn posterior_terms(
+        &self,
+        rows: &[f64],
+        paths: usize,
+        rng: &mut dyn RngCore,
+    ) -> Result<PathTerms> {
+        let d = self.data_dim;
+        if rows.is_empty() || rows.len() % d != 0 {
+            return Err(Error::shape(
+                "standardised rows (multiple of D)",
+                d,
+                rows.len(),
+            ));
+        }
+        let r = rows.len() / d;
+        let mut rep = Vec::with_capacity(r * paths * d);
+        for row in rows.chunks_exact(d) {
+            for _ in 0..paths {
+                rep.extend_from_slice(row);
+            }
+        }
+        let y = Tensor::from_vec(rep, (r * paths, d), &self.device)?.to_dtype(self.dtype())?;
+        let noise = self.cfg.solver.sample_noise(
+            rng,
+            r * paths,
+            self.latent_dim,
+            self.dtype(),
+            &self.device,
+        )?;
+        self.path_terms(&y, &noise)
+    }
+
     /// Draws `n` standardised rows from the model: the prior SDE from `Z_0 = 0`, then
     /// `y = m(Z_T) + s ε`. No autodiff graph is built. Row-major `(n, D)`.
     ///

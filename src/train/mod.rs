@@ -82,6 +82,22 @@ pub struct TrainReport {
 
 type Snapshot = Vec<(String, Tensor)>;
 
+/// Standardised training and validation rows of `table` for the seeded split of `cfg`.
+fn standardised_split(
+    table: &Table,
+    scaler: &Standardizer,
+    cfg: &TrainConfig,
+) -> Result<(Vec<f64>, Vec<f64>)> {
+    let (train_idx, val_idx) = split_rows(table.n_rows(), cfg.validation_fraction, cfg.seed)?;
+    let train = scaler.transform(&table.take_rows(&train_idx)?);
+    let val = if val_idx.is_empty() {
+        Vec::new()
+    } else {
+        scaler.transform(&table.take_rows(&val_idx)?)
+    };
+    Ok((train, val))
+}
+
 /// Trains a [`LatentModel`] on a table (see [`TrainConfig`]): minibatches, AdamW with
 /// warm-up and cosine decay, gradient clipping, a validation ELBO each epoch, early stopping,
 /// a time budget, recovery from non-finite steps, and exact checkpoints.
@@ -208,14 +224,8 @@ impl Trainer {
                 ),
             });
         }
-        let train_table = table.take_rows(&train_idx)?;
-        let scaler = Standardizer::fit(&train_table)?;
-        let train_rows = scaler.transform(&train_table);
-        let val_rows = if val_idx.is_empty() {
-            Vec::new()
-        } else {
-            scaler.transform(&table.take_rows(&val_idx)?)
-        };
+        let scaler = Standardizer::fit(&table.take_rows(&train_idx)?)?;
+        let (train_rows, val_rows) = standardised_split(table, &scaler, &train_cfg)?;
         let model = LatentModel::build(&model_cfg, table.n_cols(), train_cfg.seed, prior)?;
         model.init_from_data(&train_rows)?;
         let optimizer = AdamW::new(model.varmap(), Self::adam_cfg(&train_cfg))?;
@@ -322,18 +332,7 @@ impl Trainer {
                 ),
             });
         }
-        let (train_idx, val_idx) = split_rows(
-            table.n_rows(),
-            train_cfg.validation_fraction,
-            train_cfg.seed,
-        )?;
-        let scaler = ck.model.scaler.clone();
-        let train_rows = scaler.transform(&table.take_rows(&train_idx)?);
-        let val_rows = if val_idx.is_empty() {
-            Vec::new()
-        } else {
-            scaler.transform(&table.take_rows(&val_idx)?)
-        };
+        let (train_rows, val_rows) = standardised_split(table, &ck.model.scaler, &train_cfg)?;
         let mut optimizer = AdamW::new(ck.model.model.varmap(), Self::adam_cfg(&train_cfg))?;
         optimizer.load_state(&moments, ck.optimizer_steps)?;
         Ok(Self {
@@ -420,30 +419,12 @@ impl Trainer {
     fn elbo_of(&self, rows: &[f64]) -> Result<f64> {
         let d = self.model.columns.len();
         let k = self.train_cfg.validation_paths;
-        let dev = Device::Cpu;
-        let dtype = self.model.model.dtype();
         let mut rng = generator(self.train_cfg.seed, streams::EVAL);
         let (mut sum, mut n) = (0.0, 0usize);
-        let chunk_rows = (4096 / k).max(1);
-        for chunk in rows.chunks(chunk_rows * d) {
-            let r = chunk.len() / d;
-            let mut rep = Vec::with_capacity(r * k * d);
-            for row in chunk.chunks_exact(d) {
-                for _ in 0..k {
-                    rep.extend_from_slice(row);
-                }
-            }
-            let y = Tensor::from_vec(rep, (r * k, d), &dev)?.to_dtype(dtype)?;
-            let noise = self.model.model.config().solver.sample_noise(
-                &mut rng,
-                r * k,
-                self.model.model.latent_dim(),
-                dtype,
-                &dev,
-            )?;
-            let t = self.model.model.path_terms(&y, &noise)?;
+        for chunk in rows.chunks((4096 / k).max(1) * d) {
+            let t = self.model.model.posterior_terms(chunk, k, &mut rng)?;
             sum += t.elbo.iter().sum::<f64>();
-            n += r * k;
+            n += t.elbo.len();
         }
         Ok(sum / n as f64)
     }
