@@ -51,8 +51,9 @@ pub const DEMO_ROWS: usize = 2000;
 pub fn demo_table(rows: usize, seed: u64) -> Result<Table> {
     let mut rng = generator(seed, 0);
     let mut out = Vec::with_capacity(rows);
-    let clouds =
-        Gamma::<f64>::new(2.0, 0.25).map_err(|e| crate::error::Error::Training(e.to_string()))?;
+    let clouds = Gamma::<f64>::new(2.0, 0.25).map_err(|e| {
+        crate::error::Error::config("demo cloud distribution", "Gamma(2, 0.25)", e.to_string())
+    })?;
     for _ in 0..rows {
         let n = |rng: &mut crate::rng::Generator| -> f64 { StandardNormal.sample(rng) };
         let day = rng.random_bool(0.55);

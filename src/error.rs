@@ -57,6 +57,9 @@ pub enum Error {
         /// What is wrong and what to do.
         reason: String,
     },
+    /// A plot could not be drawn.
+    #[error("cannot draw the plot: {0}")]
+    Plot(String),
     /// Training stopped because it could not make progress.
     #[error("training failed: {0}")]
     Training(String),

@@ -84,6 +84,7 @@ mod optim;
 mod params;
 #[cfg(feature = "plot")]
 pub mod plot;
+mod precision;
 mod rng;
 mod sampler;
 mod solver;
@@ -106,12 +107,13 @@ pub use objective::{FreeEnergy, FreeEnergyValues};
 pub use ops::Activation;
 pub use optim::{AdamW, AdamWConfig, StepStats};
 pub use params::{sorted_vars, ParamBuilder};
+pub use precision::Precision;
 pub use rng::{generator, standard_normals, Generator};
-pub use sampler::{estimate_log_z, FollmerDrift, LogZEstimate, Precision, Sampler, SamplerConfig};
+pub use sampler::{estimate_log_z, FollmerDrift, LogZEstimate, Sampler, SamplerConfig};
 pub use solver::{simulate, Paths, Scheme, Sde, SolverConfig};
 pub use stack::{run_deep, DEEP_STACK_BYTES};
 pub use tabular::{Evaluation, TabularModel};
-pub use target::{zeros, FnDensity, GaussianDensity, GaussianMixture, LogDensity};
+pub use target::{FnDensity, GaussianDensity, GaussianMixture, LogDensity};
 pub use terminal::{BernoulliNll, GaussianNll, LogDensityRatio, TerminalCost};
 pub use train::{
     EpochRecord, History, Observer, StepInfo, Termination, TrainConfig, TrainReport, TrainState,

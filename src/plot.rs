@@ -12,7 +12,7 @@ use crate::error::{Error, Result};
 use crate::train::History;
 
 fn plot_err(e: impl std::fmt::Display) -> Error {
-    Error::Training(format!("cannot draw the plot: {e}"))
+    Error::Plot(e.to_string())
 }
 
 fn finish(svg: String, path: &Path) -> Result<()> {

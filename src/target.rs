@@ -1,6 +1,6 @@
 //! Unnormalised target densities for the sampler.
 
-use candle_core::{DType, Device, Tensor};
+use candle_core::{Device, Tensor};
 
 use crate::error::{Error, Result};
 
@@ -222,12 +222,4 @@ pub(crate) fn log_normal_isotropic(x: &Tensor, var: f64) -> candle_core::Result<
     let d = x.dim(1)? as f64;
     let c = -0.5 * d * (2.0 * std::f64::consts::PI * var).ln();
     x.sqr()?.sum(1)?.affine(-0.5 / var, c)
-}
-
-/// A zero `(batch, d)` tensor (the default starting point `X_0 = 0`).
-///
-/// # Errors
-/// [`Error::Candle`] if the tensor cannot be allocated.
-pub fn zeros(batch: usize, dim: usize, dtype: DType, dev: &Device) -> Result<Tensor> {
-    Ok(Tensor::zeros((batch, dim), dtype, dev)?)
 }

@@ -112,14 +112,6 @@ impl GaussianNll {
         self
     }
 
-    /// A copy with the scale detached from autodiff and the given mean map (for inference).
-    pub fn detached_with_mean_map(&self, mean_map: Option<Arc<dyn Module + Send + Sync>>) -> Self {
-        Self {
-            log_scale: self.log_scale.detach(),
-            mean_map,
-        }
-    }
-
     /// The per-dimension log scale (differentiable when learned).
     pub fn log_scale(&self) -> &Tensor {
         &self.log_scale

@@ -27,8 +27,8 @@ use crate::error::{check_positive, Error, Result};
 use crate::noise::BrownianIncrements;
 use crate::objective::FreeEnergy;
 use crate::params::ParamBuilder;
+use crate::precision::Precision;
 use crate::rng::{generator, standard_normals, streams};
-use crate::sampler::Precision;
 use crate::solver::{simulate, Scheme, Sde, SolverConfig};
 use crate::terminal::TerminalCost;
 

@@ -25,32 +25,12 @@ use crate::error::{check_positive, Error, Result};
 use crate::objective::{FreeEnergy, FreeEnergyValues};
 use crate::optim::{AdamW, AdamWConfig};
 use crate::params::ParamBuilder;
+use crate::precision::Precision;
 use crate::rng::{generator, streams, Generator};
 use crate::solver::{simulate, Scheme, Sde, SolverConfig};
 use crate::stack::run_deep;
 use crate::target::LogDensity;
 use crate::terminal::{LogDensityRatio, TerminalCost};
-
-/// Floating-point precision of tensors.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
-#[serde(rename_all = "lowercase")]
-pub enum Precision {
-    /// 32-bit floats (fast).
-    #[default]
-    F32,
-    /// 64-bit floats (for tight numerical checks).
-    F64,
-}
-
-impl Precision {
-    /// The candle dtype.
-    pub fn dtype(self) -> DType {
-        match self {
-            Precision::F32 => DType::F32,
-            Precision::F64 => DType::F64,
-        }
-    }
-}
 
 /// Settings of a [`Sampler`].
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
