@@ -254,6 +254,100 @@ impl CustomOp2 for BiasAdd {
     }
 }
 
+/// `act(xs + bias)` for xs of shape (batch, n) and bias of shape (n), in one node.
+///
+/// The pre-activation is not stored: the backward pass recomputes it from `xs` and `bias`
+/// (one add), so a dense layer keeps two `(batch, n)` tensors for backpropagation instead of
+/// three. The bias gradient is `ones(1, batch) · g'` as in [`bias_add`].
+pub fn bias_act(xs: &Tensor, bias: &Tensor, act: Activation) -> Result<Tensor> {
+    xs.contiguous()?
+        .apply_op2(&bias.contiguous()?, BiasAct(act))
+}
+
+struct BiasAct(Activation);
+
+fn bias_act_rows<T: Copy>(x: &[T], b: &[T], f: impl Fn(T, T) -> T) -> Vec<T> {
+    let n = b.len();
+    let mut out = Vec::with_capacity(x.len());
+    for row in x.chunks_exact(n) {
+        out.extend(row.iter().zip(b).map(|(&x, &b)| f(x, b)));
+    }
+    out
+}
+
+impl CustomOp2 for BiasAct {
+    fn name(&self) -> &'static str {
+        "bias-activation"
+    }
+
+    fn cpu_fwd(
+        &self,
+        s1: &CpuStorage,
+        l1: &Layout,
+        s2: &CpuStorage,
+        l2: &Layout,
+    ) -> Result<(CpuStorage, Shape)> {
+        let dims = l1.dims();
+        if dims.len() != 2 || l2.dims() != [dims[1]] {
+            bail!(
+                "bias-activation: expected xs (batch, n) and bias (n), got {:?} and {:?}",
+                dims,
+                l2.dims()
+            )
+        }
+        let a = self.0;
+        let out = match (s1, s2) {
+            (CpuStorage::F32(x), CpuStorage::F32(b)) => {
+                let (x, b) = (
+                    contig(x, l1, "bias-activation")?,
+                    contig(b, l2, "bias-activation")?,
+                );
+                CpuStorage::F32(match a {
+                    Activation::Tanh => bias_act_rows(x, b, |x, b| tanh_f32(x + b)),
+                    Activation::Silu => bias_act_rows(x, b, |x, b| (x + b) * sigmoid_f32(x + b)),
+                    Activation::Relu => bias_act_rows(x, b, |x, b| (x + b).max(0.0)),
+                })
+            }
+            (CpuStorage::F64(x), CpuStorage::F64(b)) => {
+                let (x, b) = (
+                    contig(x, l1, "bias-activation")?,
+                    contig(b, l2, "bias-activation")?,
+                );
+                CpuStorage::F64(bias_act_rows(x, b, |x, b| a.eval_f64(x + b)))
+            }
+            _ => bail!("bias-activation: dtype mismatch or unsupported dtype"),
+        };
+        Ok((out, l1.shape().clone()))
+    }
+
+    fn bwd(
+        &self,
+        xs: &Tensor,
+        bias: &Tensor,
+        res: &Tensor,
+        grad: &Tensor,
+    ) -> Result<(Option<Tensor>, Option<Tensor>)> {
+        let grad = grad.contiguous()?;
+        // tanh's derivative needs the output; silu's and relu's the pre-activation.
+        let g_pre = match self.0 {
+            Activation::Tanh => res.apply_op2_no_bwd(&grad, &ActGrad(self.0))?,
+            Activation::Silu | Activation::Relu => xs
+                .apply_op2_no_bwd(bias, &BiasAdd)?
+                .apply_op2_no_bwd(&grad, &ActGrad(self.0))?,
+        };
+        let (batch, n) = g_pre.dims2()?;
+        let ones = Tensor::ones((1, batch), g_pre.dtype(), g_pre.device())?;
+        let db = ones.matmul(&g_pre)?.reshape(n)?;
+        Ok((Some(g_pre), Some(db)))
+    }
+}
+
+/// `act(xs · wᵀ + bias)`: a dense layer followed by an activation, with the fused
+/// [`bias_act`].
+pub fn dense(xs: &Tensor, weight: &Tensor, bias: &Tensor, act: Activation) -> Result<Tensor> {
+    bias_act(&xs.matmul(&weight.t()?)?, bias, act)
+}
+
 /// `xs · wᵀ + bias` (a dense layer), with the fast bias gradient.
 pub fn linear(xs: &Tensor, weight: &Tensor, bias: Option<&Tensor>) -> Result<Tensor> {
     let y = xs.matmul(&weight.t()?)?;

@@ -107,3 +107,63 @@ fn dense_layer_gradients_match_candle() {
         .to_string();
     assert!(err.contains("[17, 5]") && err.contains("[9]"), "{err}");
 }
+
+#[test]
+fn fused_bias_activation_matches_generic_ops() {
+    // The fused fast path must give the generic autodiff path's values and gradients
+    // (within 1e-5 relative in f32; to rounding in f64).
+    use neural_sde::ops::bias_act;
+    let dev = Device::Cpu;
+    for (dtype, tol) in [(DType::F64, 1e-12), (DType::F32, 1e-5)] {
+        for a in [Activation::Tanh, Activation::Silu, Activation::Relu] {
+            let mk = |seed, r, c| {
+                Var::from_tensor(
+                    &Tensor::from_vec(
+                        standard_normals(&mut generator(seed, 0), r * c),
+                        (r, c),
+                        &dev,
+                    )
+                    .unwrap()
+                    .affine(2.0, 0.0)
+                    .unwrap()
+                    .to_dtype(dtype)
+                    .unwrap(),
+                )
+                .unwrap()
+            };
+            let x = mk(11, 37, 19);
+            let b = Var::from_tensor(&mk(12, 1, 19).as_tensor().reshape(19).unwrap()).unwrap();
+            let g = mk(13, 37, 19);
+            let fused = bias_act(x.as_tensor(), b.as_tensor(), a).unwrap();
+            let generic = reference(a, &x.as_tensor().broadcast_add(b.as_tensor()).unwrap());
+            let scale = |t: &Tensor| max_abs_diff(t, &t.zeros_like().unwrap()).max(1.0);
+            assert!(
+                max_abs_diff(&fused, &generic) <= tol * scale(&generic),
+                "{a:?} {dtype:?} value"
+            );
+            let gf = (fused * g.as_tensor())
+                .unwrap()
+                .sum_all()
+                .unwrap()
+                .backward()
+                .unwrap();
+            let gg = (generic * g.as_tensor())
+                .unwrap()
+                .sum_all()
+                .unwrap()
+                .backward()
+                .unwrap();
+            for v in [&x, &b] {
+                let (f, r) = (
+                    gf.get(v.as_tensor()).unwrap(),
+                    gg.get(v.as_tensor()).unwrap(),
+                );
+                assert!(
+                    max_abs_diff(f, r) <= tol * scale(r),
+                    "{a:?} {dtype:?} gradient differs by {}",
+                    max_abs_diff(f, r)
+                );
+            }
+        }
+    }
+}

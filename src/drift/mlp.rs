@@ -233,11 +233,9 @@ impl Drift for TimeMlp {
             ),
             (None, _) => {}
         }
-        h = self.activation.apply(&ops::bias_add(&h, &bias)?)?;
+        h = ops::bias_act(&h, &bias, self.activation)?;
         for layer in &self.hidden {
-            h = self
-                .activation
-                .apply(&ops::linear(&h, &layer.weight, Some(&layer.bias))?)?;
+            h = ops::dense(&h, &layer.weight, &layer.bias, self.activation)?;
         }
         ops::linear(&h, &self.out.weight, Some(&self.out.bias))
     }

@@ -151,7 +151,7 @@ impl Module for Decoder {
             Some((wo, bo)) => {
                 let mut h = z.clone();
                 for (w, b) in &self.hidden {
-                    h = self.activation.apply(&ops::linear(&h, w, Some(b))?)?;
+                    h = ops::dense(&h, w, b, self.activation)?;
                 }
                 lin + ops::linear(&h, wo, Some(bo))?
             }
