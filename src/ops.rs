@@ -197,13 +197,48 @@ pub fn bias_add(xs: &Tensor, bias: &Tensor) -> Result<Tensor> {
 
 struct BiasAdd;
 
-fn add_rows<T: Copy + std::ops::Add<Output = T>>(x: &[T], b: &[T]) -> Vec<T> {
-    let n = b.len();
-    let mut out = Vec::with_capacity(x.len());
-    for row in x.chunks_exact(n) {
-        out.extend(row.iter().zip(b).map(|(&x, &b)| x + b));
+/// `f(x_ij, b_j)` for every row of a contiguous `(batch, n)` storage and a bias `(n)`, in f32
+/// or f64: the forward pass shared by the bias kernels.
+fn map_rows_with_bias(
+    op: &str,
+    (s1, l1): (&CpuStorage, &Layout),
+    (s2, l2): (&CpuStorage, &Layout),
+    f32_fn: impl Fn(f32, f32) -> f32,
+    f64_fn: impl Fn(f64, f64) -> f64,
+) -> Result<(CpuStorage, Shape)> {
+    fn rows<T: Copy>(x: &[T], b: &[T], f: impl Fn(T, T) -> T) -> Vec<T> {
+        let mut out = Vec::with_capacity(x.len());
+        for row in x.chunks_exact(b.len()) {
+            out.extend(row.iter().zip(b).map(|(&x, &b)| f(x, b)));
+        }
+        out
     }
-    out
+    let dims = l1.dims();
+    if dims.len() != 2 || l2.dims() != [dims[1]] {
+        bail!(
+            "{op}: expected xs (batch, n) and bias (n), got {:?} and {:?}",
+            dims,
+            l2.dims()
+        )
+    }
+    let out = match (s1, s2) {
+        (CpuStorage::F32(x), CpuStorage::F32(b)) => {
+            CpuStorage::F32(rows(contig(x, l1, op)?, contig(b, l2, op)?, f32_fn))
+        }
+        (CpuStorage::F64(x), CpuStorage::F64(b)) => {
+            CpuStorage::F64(rows(contig(x, l1, op)?, contig(b, l2, op)?, f64_fn))
+        }
+        _ => bail!("{op}: dtype mismatch or unsupported dtype"),
+    };
+    Ok((out, l1.shape().clone()))
+}
+
+/// Gradient of a bias broadcast over rows: `ones(1, batch) · g`, shape `(n)`.
+fn bias_grad(g: &Tensor) -> Result<Tensor> {
+    let (batch, n) = g.dims2()?;
+    Tensor::ones((1, batch), g.dtype(), g.device())?
+        .matmul(g)?
+        .reshape(n)
 }
 
 impl CustomOp2 for BiasAdd {
@@ -218,26 +253,7 @@ impl CustomOp2 for BiasAdd {
         s2: &CpuStorage,
         l2: &Layout,
     ) -> Result<(CpuStorage, Shape)> {
-        let dims = l1.dims();
-        if dims.len() != 2 || l2.dims() != [dims[1]] {
-            bail!(
-                "bias-add: expected xs (batch, n) and bias (n), got {:?} and {:?}",
-                dims,
-                l2.dims()
-            )
-        }
-        let out = match (s1, s2) {
-            (CpuStorage::F32(x), CpuStorage::F32(b)) => CpuStorage::F32(add_rows(
-                contig(x, l1, "bias-add")?,
-                contig(b, l2, "bias-add")?,
-            )),
-            (CpuStorage::F64(x), CpuStorage::F64(b)) => CpuStorage::F64(add_rows(
-                contig(x, l1, "bias-add")?,
-                contig(b, l2, "bias-add")?,
-            )),
-            _ => bail!("bias-add: dtype mismatch or unsupported dtype"),
-        };
-        Ok((out, l1.shape().clone()))
+        map_rows_with_bias("bias-add", (s1, l1), (s2, l2), |x, b| x + b, |x, b| x + b)
     }
 
     fn bwd(
@@ -247,10 +263,7 @@ impl CustomOp2 for BiasAdd {
         _res: &Tensor,
         grad: &Tensor,
     ) -> Result<(Option<Tensor>, Option<Tensor>)> {
-        let (batch, n) = grad.dims2()?;
-        let ones = Tensor::ones((1, batch), grad.dtype(), grad.device())?;
-        let db = ones.matmul(grad)?.reshape(n)?;
-        Ok((Some(grad.clone()), Some(db)))
+        Ok((Some(grad.clone()), Some(bias_grad(grad)?)))
     }
 }
 
@@ -266,15 +279,6 @@ pub fn bias_act(xs: &Tensor, bias: &Tensor, act: Activation) -> Result<Tensor> {
 
 struct BiasAct(Activation);
 
-fn bias_act_rows<T: Copy>(x: &[T], b: &[T], f: impl Fn(T, T) -> T) -> Vec<T> {
-    let n = b.len();
-    let mut out = Vec::with_capacity(x.len());
-    for row in x.chunks_exact(n) {
-        out.extend(row.iter().zip(b).map(|(&x, &b)| f(x, b)));
-    }
-    out
-}
-
 impl CustomOp2 for BiasAct {
     fn name(&self) -> &'static str {
         "bias-activation"
@@ -287,37 +291,24 @@ impl CustomOp2 for BiasAct {
         s2: &CpuStorage,
         l2: &Layout,
     ) -> Result<(CpuStorage, Shape)> {
-        let dims = l1.dims();
-        if dims.len() != 2 || l2.dims() != [dims[1]] {
-            bail!(
-                "bias-activation: expected xs (batch, n) and bias (n), got {:?} and {:?}",
-                dims,
-                l2.dims()
-            )
-        }
         let a = self.0;
-        let out = match (s1, s2) {
-            (CpuStorage::F32(x), CpuStorage::F32(b)) => {
-                let (x, b) = (
-                    contig(x, l1, "bias-activation")?,
-                    contig(b, l2, "bias-activation")?,
-                );
-                CpuStorage::F32(match a {
-                    Activation::Tanh => bias_act_rows(x, b, |x, b| tanh_f32(x + b)),
-                    Activation::Silu => bias_act_rows(x, b, |x, b| (x + b) * sigmoid_f32(x + b)),
-                    Activation::Relu => bias_act_rows(x, b, |x, b| (x + b).max(0.0)),
-                })
+        let f64_fn = move |x: f64, b: f64| a.eval_f64(x + b);
+        let args = ("bias-activation", (s1, l1), (s2, l2));
+        match a {
+            Activation::Tanh => {
+                map_rows_with_bias(args.0, args.1, args.2, |x, b| tanh_f32(x + b), f64_fn)
             }
-            (CpuStorage::F64(x), CpuStorage::F64(b)) => {
-                let (x, b) = (
-                    contig(x, l1, "bias-activation")?,
-                    contig(b, l2, "bias-activation")?,
-                );
-                CpuStorage::F64(bias_act_rows(x, b, |x, b| a.eval_f64(x + b)))
+            Activation::Silu => map_rows_with_bias(
+                args.0,
+                args.1,
+                args.2,
+                |x, b| (x + b) * sigmoid_f32(x + b),
+                f64_fn,
+            ),
+            Activation::Relu => {
+                map_rows_with_bias(args.0, args.1, args.2, |x, b| (x + b).max(0.0), f64_fn)
             }
-            _ => bail!("bias-activation: dtype mismatch or unsupported dtype"),
-        };
-        Ok((out, l1.shape().clone()))
+        }
     }
 
     fn bwd(
@@ -328,16 +319,15 @@ impl CustomOp2 for BiasAct {
         grad: &Tensor,
     ) -> Result<(Option<Tensor>, Option<Tensor>)> {
         let grad = grad.contiguous()?;
-        // tanh's derivative needs the output; silu's and relu's the pre-activation.
+        // tanh's derivative needs the output; silu's and relu's the pre-activation, which
+        // is recomputed here rather than stored.
         let g_pre = match self.0 {
             Activation::Tanh => res.apply_op2_no_bwd(&grad, &ActGrad(self.0))?,
             Activation::Silu | Activation::Relu => xs
                 .apply_op2_no_bwd(bias, &BiasAdd)?
                 .apply_op2_no_bwd(&grad, &ActGrad(self.0))?,
         };
-        let (batch, n) = g_pre.dims2()?;
-        let ones = Tensor::ones((1, batch), g_pre.dtype(), g_pre.device())?;
-        let db = ones.matmul(&g_pre)?.reshape(n)?;
+        let db = bias_grad(&g_pre)?;
         Ok((Some(g_pre), Some(db)))
     }
 }
