@@ -45,7 +45,7 @@ pub struct TrainState {
     pub table_fingerprint: u64,
 }
 
-/// Summary returned by [`Trainer::fit`].
+/// Summary returned by [`crate::Trainer::fit`].
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct TrainReport {
     /// Epochs completed.
