@@ -43,7 +43,7 @@ fn target_a(log_z: f64) -> Arc<GaussianDensity> {
 }
 
 #[test]
-fn closed_form_drift_matches_published_values() {
+fn closed_form_drift_matches_reference_values() {
     assert_rel("KL A", kl_to_standard(&M, &S), 0.875, 1e-14);
     // Check values for example A (u*((0.3, −0.2), 0.4) = (1.0625, −0.5),
     // u*((1, −1), 0.9) = (0.9090909091, −0.7894736842)).
@@ -116,14 +116,15 @@ fn follmer_process_has_bridge_marginals_and_kl_cost() {
             let (m, se) = mean_se(&xs);
             let (v, vse) = var_se(&xs);
             // EM bias at h = 1/200 is below 2e-3 here (0.0019 at most, from the exact EM
-            // moments of the published table at N = 100 and 1000).
+            // moments at N = 100 and 1000, computed independently by the moment recursion).
             assert_within(&format!("mean t={t} j={j}"), m, t * M[j], se, 4.0, 2e-3);
             let want = t * t * S[j] + t * (1.0 - t);
             assert_within(&format!("var t={t} j={j}"), v, want, vse, 4.0, 0.01);
         }
     }
     let (c, cse) = mean_se(&vec1(&p.control_cost));
-    // Published exact EM expected cost at N = 100: 0.8718822915; at N = 1000: 0.8746875729;
+    // Exact EM expected cost (moment recursion, computed independently): 0.8718822915 at
+    // N = 100, 0.8746875729 at N = 1000;
     // so at N = 200 the EM bias is below 0.003.
     assert_within("cost vs KL", c, 0.875, cse, 4.0, 0.003);
 }
@@ -198,7 +199,7 @@ fn monte_carlo_follmer_sampler_hits_the_target() {
         let (v, vse) = var_se(&xs);
         // EM is exact in the mean for the exact drift; M = 500 adds an O(1/M) bias.
         assert_within(&format!("mean {j}"), mean, M[j], se, 4.0, 0.02);
-        // EM variance bias at N = 25 is below 0.1 (published N = 10 values 0.539, 1.856).
+        // EM variance bias at N = 25 is below 0.1 (exact EM values at N = 10: 0.539, 1.856).
         assert_within(&format!("var {j}"), v, S[j], vse, 4.0, 0.1);
     }
 }

@@ -42,7 +42,7 @@ fn importance_weights_have_mean_one() {
 
 /// Marginal likelihood of the discretised OU prior dZ = −Z dt + dW, y | Z_1 ~ N(Z_1, 0.25),
 /// y = 1, N = 10: p_N(y) = N(y; 0, V_EM + s²) with V_EM = h(1 − r²ⁿ)/(1 − r²), r = 1 − h
-/// (AR(1) variance; common practice). Published value log p_N(y) = −1.451253944606073.
+/// (AR(1) variance; common practice). Reference value (computed independently in float64) log p_N(y) = −1.451253944606073.
 /// The weighted estimator E_Q[w · p(y | X_N)] is unbiased for p_N(y) under any control.
 #[test]
 fn weighted_likelihood_recovers_discrete_marginal() {

@@ -1,5 +1,5 @@
 //! Pathwise gradients: against central finite differences with common random numbers, and
-//! against a published closed-form derivative.
+//! against a closed-form derivative of the discretised loss.
 mod common;
 
 use std::sync::Arc;
@@ -122,7 +122,7 @@ fn gradients_match_central_differences() {
 fn ou_parameter_gradient_matches_discrete_closed_form() {
     // d/dθ E[X_N²] for EM on dX = −θX dt + dW, X_0 = 1, N = 10, θ = 0.7:
     // E X_N² = r²ᴺ + h(1 − r²ᴺ)/(1 − r²), r = 1 − θh, whose derivative is −0.911236338164
-    // (published check value; "discretise-then-optimise" is exact for the discrete loss,
+    // (value computed independently in float64 from that closed form; "discretise-then-optimise" is exact for the discrete loss,
     // cf. Li, Wong, Chen, Duvenaud 2020, AISTATS, from memory).
     let dev = Device::Cpu;
     let theta = Var::new(&[0.7f64], &dev).unwrap();

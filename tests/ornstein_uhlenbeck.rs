@@ -1,6 +1,6 @@
 //! Ornstein–Uhlenbeck: moments of Euler–Maruyama and SRA1 against their exact recursions and
 #![allow(clippy::needless_range_loop)] // index loops mirror the textbook formulas
-//! the continuous solution, and observed strong orders against the published ones.
+//! the continuous solution, and observed strong orders against the orders proved in the literature.
 mod common;
 
 use candle_core::{DType, Device, Tensor};
@@ -52,7 +52,7 @@ fn em_moments(n: usize) -> (f64, f64) {
 
 #[test]
 fn euler_maruyama_matches_ar1_moments() {
-    // Published check values (x0 = 1, θ = σ = T = 1): EM n = 10 mean 0.3486784401,
+    // Reference values computed independently in float64 (x0 = 1, θ = σ = T = 1): EM n = 10 mean 0.3486784401,
     // var 0.462328076531279 — our closed form reproduces them first.
     let (m10, v10) = em_moments(10);
     assert_rel("EM mean n=10", m10, 0.3486784401, 1e-10);
@@ -104,7 +104,7 @@ fn sra1_matches_its_linear_recursion() {
     // On a linear drift SRA1 is X' = R X + σ(ΔW − θ ΔZ) with R = 1 − θh + θ²h²/2 and per-step
     // noise variance σ²(h − θh² + θ²h³/3) (derived from the scheme; Rößler 2010 for SRA1,
     // Var ΔZ = h³/3 and Cov(ΔW, ΔZ) = h²/2 from Kloeden & Platen 1992, §10.4, from memory).
-    // Published values for n = 10: SRA1 var 0.431352606744827.
+    // Reference value computed independently in float64 for n = 10: SRA1 var 0.431352606744827.
     let n = 10;
     let h = 0.1;
     let big_r: f64 = 1.0 - THETA * h + THETA * THETA * h * h / 2.0;
@@ -185,7 +185,7 @@ fn strong_error(scheme: Scheme, n: usize, paths: usize) -> f64 {
 }
 
 #[test]
-fn observed_strong_orders_match_published_orders() {
+fn observed_strong_orders_match_proven_orders() {
     let ns = [4usize, 8, 16, 32, 64];
     let hs: Vec<f64> = ns.iter().map(|&n| 1.0 / n as f64).collect();
     let em: Vec<f64> = ns

@@ -23,7 +23,7 @@ fn compare(table: &neural_sde::Table, train_cfg: TrainConfig) -> (f64, f64, f64)
 
 #[test]
 fn iris_beats_full_covariance_gaussian() {
-    // Fisher's iris as shipped by linfa-datasets. Published baseline (standardised space,
+    // Fisher's iris as shipped by linfa-datasets. Baseline computed independently with numpy (standardised space,
     // split mod5): full-covariance Gaussian test log-likelihood per dimension
     // −0.8330767812, with Σ log sd / d = −0.1753928495.
     let t = baseline::iris();
@@ -45,7 +45,7 @@ fn iris_beats_full_covariance_gaussian() {
 
 #[test]
 fn red_wine_quality_beats_full_covariance_gaussian() {
-    // Cortez et al. 2009 red wine quality (11 features) from linfa-datasets. Published
+    // Cortez et al. 2009 red wine quality (11 features) from linfa-datasets. Baseline computed independently with numpy
     // baseline: full-covariance Gaussian test log-likelihood per dimension −1.2685403688
     // (standardised space, split mod5), Σ log sd / d = −0.8816458030.
     let t = baseline::winequality();
