@@ -152,6 +152,8 @@ impl Sigma {
     /// `x · σ` (per dimension).
     pub(crate) fn mul(&self, x: &Tensor) -> candle_core::Result<Tensor> {
         match self {
+            // σ = 1 (the default) needs neither a copy nor a graph node on the solver's path.
+            Sigma::Scalar(s) if *s == 1.0 => Ok(x.clone()),
             Sigma::Scalar(s) => x.affine(*s, 0.0),
             Sigma::Row(r) => x.broadcast_mul(r),
         }
@@ -160,6 +162,7 @@ impl Sigma {
     /// `x / σ` (per dimension).
     pub(crate) fn div(&self, x: &Tensor) -> candle_core::Result<Tensor> {
         match self {
+            Sigma::Scalar(s) if *s == 1.0 => Ok(x.clone()),
             Sigma::Scalar(s) => x.affine(1.0 / *s, 0.0),
             Sigma::Row(r) => x.broadcast_div(r),
         }

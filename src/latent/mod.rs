@@ -30,7 +30,6 @@ use crate::params::ParamBuilder;
 use crate::precision::Precision;
 use crate::rng::{generator, standard_normals, streams};
 use crate::solver::{simulate, Scheme, Sde, SolverConfig};
-use crate::terminal::TerminalCost;
 
 /// Settings of a [`LatentModel`].
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -485,10 +484,5 @@ impl LatentModel {
             .to_dtype(self.dtype())?;
         let y = (mean + eps.matmul(&factor.t()?)?)?;
         Ok(y.to_dtype(DType::F64)?.flatten_all()?.to_vec1::<f64>()?)
-    }
-
-    /// Terminal cost (for callers that simulate themselves).
-    pub fn terminal(&self) -> &dyn TerminalCost {
-        &self.nets.nll
     }
 }
