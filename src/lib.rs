@@ -67,7 +67,7 @@
 
 #![deny(missing_docs)]
 #![deny(missing_debug_implementations)]
-#![forbid(unsafe_code)]
+#![deny(unsafe_code)]
 
 pub mod checkpoint;
 mod data;
@@ -75,6 +75,7 @@ mod demo;
 mod diffusion;
 mod drift;
 mod error;
+mod fused;
 mod latent;
 pub mod linalg;
 mod noise;

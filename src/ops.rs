@@ -61,11 +61,11 @@ pub(crate) fn tanh_f32(x: f32) -> f32 {
 
 /// sigmoid(x) = (1 + tanh(x/2))/2 for f32.
 #[inline(always)]
-fn sigmoid_f32(x: f32) -> f32 {
+pub(crate) fn sigmoid_f32(x: f32) -> f32 {
     0.5 + 0.5 * tanh_f32(0.5 * x)
 }
 
-fn sigmoid_f64(x: f64) -> f64 {
+pub(crate) fn sigmoid_f64(x: f64) -> f64 {
     0.5 + 0.5 * (0.5 * x).tanh()
 }
 

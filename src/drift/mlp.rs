@@ -208,7 +208,37 @@ impl TimeMlp {
     }
 }
 
+impl TimeMlp {
+    /// The network's shape for the fused kernel, with its parameters starting at `offset` of
+    /// the packed vector, and the parameter tensors in packed order.
+    pub(crate) fn fused_parts(&self, offset: usize) -> (crate::fused::NetShape, Vec<Tensor>) {
+        let shape = crate::fused::NetShape {
+            d: self.dim,
+            c: self.context_dim,
+            w: self.first.bias.dims1().unwrap_or(0),
+            depth: self.hidden.len() + 1,
+            act: self.activation,
+            offset,
+        };
+        let mut parts = vec![self.first.weight.clone()];
+        parts.extend(self.weight_c.iter().cloned());
+        parts.push(self.first.bias.clone());
+        parts.push(self.weight_t.clone());
+        for l in &self.hidden {
+            parts.push(l.weight.clone());
+            parts.push(l.bias.clone());
+        }
+        parts.push(self.out.weight.clone());
+        parts.push(self.out.bias.clone());
+        (shape, parts)
+    }
+}
+
 impl Drift for TimeMlp {
+    fn as_time_mlp(&self) -> Option<&TimeMlp> {
+        Some(self)
+    }
+
     fn dim(&self) -> usize {
         self.dim
     }

@@ -57,6 +57,14 @@ pub trait Drift: Send + Sync {
     fn detached(&self) -> Option<Box<dyn Drift>> {
         None
     }
+
+    /// The built-in network behind this drift, if it is one. The solver then runs the whole
+    /// path through a fused kernel with a hand-written backward pass (see
+    /// [`crate::SolverConfig::fused_networks`]). Custom drifts keep the default `None` and go
+    /// through candle's generic autodiff.
+    fn as_time_mlp(&self) -> Option<&TimeMlp> {
+        None
+    }
 }
 
 impl<D: Drift + ?Sized> Drift for Box<D> {
@@ -72,6 +80,9 @@ impl<D: Drift + ?Sized> Drift for Box<D> {
     fn detached(&self) -> Option<Box<dyn Drift>> {
         (**self).detached()
     }
+    fn as_time_mlp(&self) -> Option<&TimeMlp> {
+        (**self).as_time_mlp()
+    }
 }
 
 impl<D: Drift + ?Sized> Drift for std::sync::Arc<D> {
@@ -86,5 +97,8 @@ impl<D: Drift + ?Sized> Drift for std::sync::Arc<D> {
     }
     fn detached(&self) -> Option<Box<dyn Drift>> {
         (**self).detached()
+    }
+    fn as_time_mlp(&self) -> Option<&TimeMlp> {
+        (**self).as_time_mlp()
     }
 }

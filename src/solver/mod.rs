@@ -66,6 +66,12 @@ pub struct SolverConfig {
     pub scheme: Scheme,
     /// Keep every state `X_0 … X_N` in [`Paths::path`] (costs memory; off by default).
     pub keep_path: bool,
+    /// Run built-in networks ([`crate::TimeMlp`]) through the fused whole-path kernel with
+    /// its hand-written backward pass (on by default). It applies with Euler–Maruyama, a
+    /// fixed σ and no kept path, on the CPU in f32 or f64; values and gradients equal those of
+    /// the generic autodiff path up to rounding. Off, every step goes through candle's
+    /// generic ops (useful to check a result, or to differentiate twice).
+    pub fused_networks: bool,
 }
 
 impl Default for SolverConfig {
@@ -75,6 +81,7 @@ impl Default for SolverConfig {
             n_steps: 50,
             scheme: Scheme::EulerMaruyama,
             keep_path: false,
+            fused_networks: true,
         }
     }
 }
@@ -231,6 +238,9 @@ pub fn simulate(
         .dims2()
         .map_err(|_| Error::shape("x0", "(batch, d)", x0.dims()))?;
     check_inputs(sde, cfg, batch, dim, noise, context)?;
+    if let Some(paths) = crate::fused::try_simulate(sde, cfg, x0, noise, context)? {
+        return Ok(paths);
+    }
     let sigma = sde.diffusion.resolve(dim, x0.dtype(), x0.device())?;
     let mut st = step::State::new(x0.clone(), cfg.keep_path);
     let h = cfg.step();

@@ -1,0 +1,335 @@
+//! One built-in network ([`crate::TimeMlp`]) inside the fused kernel: its parameter layout in
+//! the packed parameter vector, its forward pass on a block of rows, and the pieces of its
+//! backward pass.
+
+use super::gemm::{add_column_sums, matmul, Op};
+use super::real::{activate, Real};
+use crate::ops::Activation;
+
+/// Shape of a network and where its parameters sit in the packed vector.
+///
+/// Packed order (each tensor row-major, weights `(out, in)`): first-layer weight `(w, d)`,
+/// context weight `(w, c)` (when `c > 0`), first-layer bias `(w)`, time weight `(w)`, then per
+/// further hidden layer its weight `(w, w)` and bias `(w)`, then the output weight `(d, w)`
+/// and bias `(d)`.
+#[derive(Debug, Clone)]
+pub(crate) struct NetShape {
+    pub d: usize,
+    pub c: usize,
+    pub w: usize,
+    /// Number of hidden layers (≥ 1).
+    pub depth: usize,
+    pub act: Activation,
+    /// Offset of the first parameter in the packed vector.
+    pub offset: usize,
+}
+
+/// Offsets of each parameter tensor, relative to the packed vector's start.
+#[derive(Debug, Clone)]
+pub(crate) struct Offsets {
+    pub w1: usize,
+    pub wc: usize,
+    pub b1: usize,
+    pub wt: usize,
+    /// `(weight, bias)` of hidden layers 2..=depth.
+    pub hidden: Vec<(usize, usize)>,
+    pub wo: usize,
+    pub bo: usize,
+    pub end: usize,
+}
+
+impl NetShape {
+    pub fn offsets(&self) -> Offsets {
+        let (d, c, w) = (self.d, self.c, self.w);
+        let mut at = self.offset;
+        let mut take = |n: usize| {
+            let o = at;
+            at += n;
+            o
+        };
+        let w1 = take(w * d);
+        let wc = take(w * c);
+        let b1 = take(w);
+        let wt = take(w);
+        let hidden = (1..self.depth).map(|_| (take(w * w), take(w))).collect();
+        let wo = take(d * w);
+        let bo = take(d);
+        Offsets {
+            w1,
+            wc,
+            b1,
+            wt,
+            hidden,
+            wo,
+            bo,
+            end: at,
+        }
+    }
+
+    /// Number of parameters.
+    pub fn len(&self) -> usize {
+        self.offsets().end - self.offset
+    }
+}
+
+/// Views of one network's saved activations for one solver step on a block of `rows` rows:
+/// post-activations `h[l]` and activation derivatives `da[l]`, each `(rows, w)`.
+pub(crate) struct StepTape<'a, T> {
+    pub h: Vec<&'a mut [T]>,
+    pub da: Vec<&'a mut [T]>,
+}
+
+/// Forward pass at time `t` on `x` `(rows, d)` (and `ctx` `(rows, c)`), writing the hidden
+/// activations into `tape` and the output `(rows, d)` into `out`.
+pub(crate) fn forward<T: Real>(
+    net: &NetShape,
+    o: &Offsets,
+    theta: &[T],
+    x: &[T],
+    ctx: Option<&[T]>,
+    t: T,
+    rows: usize,
+    tape: &mut StepTape<'_, T>,
+    out: &mut [T],
+) {
+    let (d, c, w) = (net.d, net.c, net.w);
+    // First layer: pre-activation = b1 + t w_t + x W1ᵀ + ctx Wcᵀ.
+    {
+        let h = &mut *tape.h[0];
+        let (b1, wt) = (&theta[o.b1..o.b1 + w], &theta[o.wt..o.wt + w]);
+        for row in h.chunks_exact_mut(w) {
+            for ((r, &b), &tw) in row.iter_mut().zip(b1).zip(wt) {
+                *r = b + t * tw;
+            }
+        }
+        matmul(h, x, Op::N, &theta[o.w1..], Op::T, (rows, w, d), true, 1);
+        if let Some(ctx) = ctx {
+            if c > 0 {
+                matmul(h, ctx, Op::N, &theta[o.wc..], Op::T, (rows, w, c), true, 1);
+            }
+        }
+        activate(net.act, h, tape.da[0]);
+    }
+    for (l, &(wl, bl)) in o.hidden.iter().enumerate() {
+        let (prev, next) = tape.h.split_at_mut(l + 1);
+        let (input, h) = (&*prev[l], &mut *next[0]);
+        fill_rows(h, &theta[bl..bl + w]);
+        matmul(h, input, Op::N, &theta[wl..], Op::T, (rows, w, w), true, 1);
+        activate(net.act, h, tape.da[l + 1]);
+    }
+    fill_rows(out, &theta[o.bo..o.bo + d]);
+    let last = &*tape.h[net.depth - 1];
+    matmul(
+        out,
+        last,
+        Op::N,
+        &theta[o.wo..],
+        Op::T,
+        (rows, d, w),
+        true,
+        1,
+    );
+}
+
+fn fill_rows<T: Real>(m: &mut [T], row: &[T]) {
+    for r in m.chunks_exact_mut(row.len()) {
+        r.copy_from_slice(row);
+    }
+}
+
+/// Backward pass of one step: given the output gradient `g` `(rows, d)`, turns the saved
+/// derivatives `tape.da[l]` into the pre-activation gradients δ_l (in place), adds the input
+/// gradient `δ_1 W1` to `gx` and, when asked, `δ_1 Wc` to `gctx`. `scratch` holds `rows·w`.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn backward_step<T: Real>(
+    net: &NetShape,
+    o: &Offsets,
+    theta: &[T],
+    g: &[T],
+    rows: usize,
+    tape: &mut StepTape<'_, T>,
+    scratch: &mut [T],
+    gx: &mut [T],
+    gctx: Option<&mut [T]>,
+) {
+    let (d, c, w) = (net.d, net.c, net.w);
+    let top = net.depth - 1;
+    matmul(
+        scratch,
+        g,
+        Op::N,
+        &theta[o.wo..],
+        Op::N,
+        (rows, w, d),
+        false,
+        1,
+    );
+    mul_in_place(tape.da[top], scratch);
+    for l in (1..net.depth).rev() {
+        let wl = o.hidden[l - 1].0;
+        matmul(
+            scratch,
+            tape.da[l],
+            Op::N,
+            &theta[wl..],
+            Op::N,
+            (rows, w, w),
+            false,
+            1,
+        );
+        mul_in_place(tape.da[l - 1], scratch);
+    }
+    let delta1 = &*tape.da[0];
+    matmul(
+        gx,
+        delta1,
+        Op::N,
+        &theta[o.w1..],
+        Op::N,
+        (rows, d, w),
+        true,
+        1,
+    );
+    if let Some(gctx) = gctx {
+        if c > 0 {
+            matmul(
+                gctx,
+                delta1,
+                Op::N,
+                &theta[o.wc..],
+                Op::N,
+                (rows, c, w),
+                true,
+                1,
+            );
+        }
+    }
+}
+
+fn mul_in_place<T: Real>(a: &mut [T], b: &[T]) {
+    for (a, &b) in a.iter_mut().zip(b) {
+        *a *= b;
+    }
+}
+
+/// The whole-path saved buffers of one network on a block, `steps` solver steps of `rows`
+/// rows: for each hidden layer, post-activations and derivatives (later δ), each
+/// `(steps·rows, w)`, and the output gradients `(steps·rows, d)`.
+pub(crate) struct NetTape<T> {
+    pub h: Vec<Vec<T>>,
+    pub da: Vec<Vec<T>>,
+    pub g_out: Vec<T>,
+}
+
+impl<T: Real> NetTape<T> {
+    pub fn new(net: &NetShape, steps: usize, rows: usize) -> Self {
+        let n = steps * rows * net.w;
+        Self {
+            h: (0..net.depth).map(|_| vec![T::ZERO; n]).collect(),
+            da: (0..net.depth).map(|_| vec![T::ZERO; n]).collect(),
+            g_out: vec![T::ZERO; steps * rows * net.d],
+        }
+    }
+
+    /// The views of slot `k`: the hidden activations and the output gradient.
+    pub fn split(&mut self, k: usize, rows: usize, net: &NetShape) -> (StepTape<'_, T>, &mut [T]) {
+        let r = k * rows * net.w..(k + 1) * rows * net.w;
+        let tape = StepTape {
+            h: self.h.iter_mut().map(|v| &mut v[r.clone()]).collect(),
+            da: self.da.iter_mut().map(|v| &mut v[r.clone()]).collect(),
+        };
+        (
+            tape,
+            &mut self.g_out[k * rows * net.d..(k + 1) * rows * net.d],
+        )
+    }
+}
+
+/// Parameter gradients from a filled tape (δ in `da`, output gradients in `g_out`), added to
+/// `grad` (the packed gradient vector): one product over all `steps·rows` rows per weight.
+/// `xs` holds the network inputs `x_k` `(steps·rows, d)`, `ctx` the context `(rows, c)`,
+/// `times` the step times.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn parameter_grads<T: Real>(
+    net: &NetShape,
+    o: &Offsets,
+    tape: &NetTape<T>,
+    xs: &[T],
+    ctx: Option<&[T]>,
+    times: &[T],
+    rows: usize,
+    grad: &mut [T],
+) {
+    let (d, c, w) = (net.d, net.c, net.w);
+    let n = times.len() * rows;
+    let top = net.depth - 1;
+    matmul(
+        &mut grad[o.wo..o.wo + d * w],
+        &tape.g_out,
+        Op::T,
+        &tape.h[top],
+        Op::N,
+        (d, w, n),
+        true,
+        1,
+    );
+    add_column_sums(&mut grad[o.bo..o.bo + d], &tape.g_out[..n * d], d);
+    for l in (1..net.depth).rev() {
+        let (wl, bl) = o.hidden[l - 1];
+        matmul(
+            &mut grad[wl..wl + w * w],
+            &tape.da[l],
+            Op::T,
+            &tape.h[l - 1],
+            Op::N,
+            (w, w, n),
+            true,
+            1,
+        );
+        add_column_sums(&mut grad[bl..bl + w], &tape.da[l][..n * w], w);
+    }
+    let delta1 = &tape.da[0];
+    matmul(
+        &mut grad[o.w1..o.w1 + w * d],
+        delta1,
+        Op::T,
+        xs,
+        Op::N,
+        (w, d, n),
+        true,
+        1,
+    );
+    // Bias, time weight and (for the context weight) the per-row sum over steps.
+    let mut per_row = if c > 0 && ctx.is_some() {
+        vec![T::ZERO; rows * w]
+    } else {
+        Vec::new()
+    };
+    let mut col = vec![T::ZERO; w];
+    for (k, &t) in times.iter().enumerate() {
+        let block = &delta1[k * rows * w..(k + 1) * rows * w];
+        col.fill(T::ZERO);
+        add_column_sums(&mut col, block, w);
+        for j in 0..w {
+            grad[o.b1 + j] += col[j];
+            grad[o.wt + j] += t * col[j];
+        }
+        if !per_row.is_empty() {
+            for (a, &b) in per_row.iter_mut().zip(block) {
+                *a += b;
+            }
+        }
+    }
+    if let (Some(ctx), false) = (ctx, per_row.is_empty()) {
+        matmul(
+            &mut grad[o.wc..o.wc + w * c],
+            &per_row,
+            Op::T,
+            ctx,
+            Op::N,
+            (w, c, rows),
+            true,
+            1,
+        );
+    }
+}

@@ -1,0 +1,252 @@
+//! The whole Euler–Maruyama path of a block of rows through the fused networks: forward with
+//! a tape of what the backward pass needs, and the hand-written backward pass.
+
+use super::net::{self, NetShape, NetTape, Offsets};
+use super::real::Real;
+
+/// What the kernel integrates: `dX = (b + u)(X, t) dt + σ dW`, `b` and `u` built-in networks.
+#[derive(Debug, Clone)]
+pub(crate) struct PathSpec {
+    pub prior: Option<NetShape>,
+    pub control: Option<NetShape>,
+    pub d: usize,
+    pub n_steps: usize,
+    pub h: f64,
+    /// σ per dimension.
+    pub sigma: Vec<f64>,
+    /// Length of the packed parameter vector.
+    pub n_params: usize,
+}
+
+impl PathSpec {
+    fn times<T: Real>(&self) -> Vec<T> {
+        (0..self.n_steps)
+            .map(|k| T::from_f64(k as f64 * self.h))
+            .collect()
+    }
+}
+
+/// Saved state of one block for the backward pass.
+pub(crate) struct BlockTape<T> {
+    /// States `x_0 … x_{N−1}`, `(N·rows, d)`.
+    xs: Vec<T>,
+    /// Controls `u_k`, `(N·rows, d)`.
+    us: Vec<T>,
+    prior: Option<NetTape<T>>,
+    control: Option<NetTape<T>>,
+}
+
+/// The inputs of one block: rows `r0 .. r0 + rows` of the batch.
+pub(crate) struct Block<'a, T> {
+    pub theta: &'a [T],
+    pub x0: &'a [T],
+    /// The context rows `(rows, c)`, when the control takes one.
+    pub ctx: Option<&'a [T]>,
+    /// All the noise, `(N, batch, d)`.
+    pub noise: &'a [T],
+    pub batch: usize,
+    pub r0: usize,
+    pub rows: usize,
+}
+
+impl<T: Real> Block<'_, T> {
+    fn dw(&self, spec: &PathSpec, k: usize) -> &[T] {
+        let d = spec.d;
+        let start = (k * self.batch + self.r0) * d;
+        &self.noise[start..start + self.rows * d]
+    }
+}
+
+/// Forward pass of a block: writes `[x_N, control cost, Σ_k v_k·ΔW_k]` per row into `out`
+/// `(rows, d + 2)`; returns the tape when `keep` (for a backward pass).
+pub(crate) fn forward<T: Real>(
+    spec: &PathSpec,
+    blk: &Block<'_, T>,
+    keep: bool,
+    out: &mut [T],
+) -> Option<BlockTape<T>> {
+    let (d, rows, n) = (spec.d, blk.rows, spec.n_steps);
+    let slots = if keep { n } else { 1 };
+    let offs = |s: &Option<NetShape>| s.as_ref().map(NetShape::offsets);
+    let (po, co) = (offs(&spec.prior), offs(&spec.control));
+    let mut prior_tape = spec.prior.as_ref().map(|s| NetTape::new(s, slots, rows));
+    let mut control_tape = spec.control.as_ref().map(|s| NetTape::new(s, slots, rows));
+    let mut xs = if keep {
+        vec![T::ZERO; n * rows * d]
+    } else {
+        Vec::new()
+    };
+    let mut us = if keep && spec.control.is_some() {
+        vec![T::ZERO; n * rows * d]
+    } else {
+        Vec::new()
+    };
+    let sigma: Vec<T> = spec.sigma.iter().map(|&s| T::from_f64(s)).collect();
+    let inv_sigma: Vec<T> = spec.sigma.iter().map(|&s| T::from_f64(1.0 / s)).collect();
+    let h = T::from_f64(spec.h);
+    let mut x = blk.x0.to_vec();
+    let mut b = vec![T::ZERO; rows * d];
+    let mut u = vec![T::ZERO; rows * d];
+    let mut cost = vec![T::ZERO; rows];
+    let mut stoch = vec![T::ZERO; rows];
+    for k in 0..n {
+        let t = T::from_f64(k as f64 * spec.h);
+        let slot = if keep { k } else { 0 };
+        if keep {
+            xs[k * rows * d..(k + 1) * rows * d].copy_from_slice(&x);
+        }
+        if let (Some(s), Some(o), Some(tp)) = (&spec.prior, &po, &mut prior_tape) {
+            let (mut st, _) = tp.split(slot, rows, s);
+            net::forward(s, o, blk.theta, &x, None, t, rows, &mut st, &mut b);
+        }
+        if let (Some(s), Some(o), Some(tp)) = (&spec.control, &co, &mut control_tape) {
+            let (mut st, _) = tp.split(slot, rows, s);
+            net::forward(s, o, blk.theta, &x, blk.ctx, t, rows, &mut st, &mut u);
+            if keep {
+                us[k * rows * d..(k + 1) * rows * d].copy_from_slice(&u);
+            }
+        }
+        let dw = blk.dw(spec, k);
+        let has_prior = spec.prior.is_some();
+        let has_control = spec.control.is_some();
+        for r in 0..rows {
+            let row = r * d..(r + 1) * d;
+            let (mut c2, mut s1) = (T::ZERO, T::ZERO);
+            for j in 0..d {
+                let i = row.start + j;
+                let mut f = T::ZERO;
+                if has_prior {
+                    f += b[i];
+                }
+                if has_control {
+                    let v = u[i] * inv_sigma[j];
+                    c2 += v * v;
+                    s1 += v * dw[i];
+                    f += u[i];
+                }
+                x[i] += h * f + sigma[j] * dw[i];
+            }
+            cost[r] += c2;
+            stoch[r] += s1;
+        }
+    }
+    let half_h = T::from_f64(0.5 * spec.h);
+    for r in 0..rows {
+        let o = &mut out[r * (d + 2)..(r + 1) * (d + 2)];
+        o[..d].copy_from_slice(&x[r * d..(r + 1) * d]);
+        o[d] = half_h * cost[r];
+        o[d + 1] = stoch[r];
+    }
+    keep.then_some(BlockTape {
+        xs,
+        us,
+        prior: prior_tape,
+        control: control_tape,
+    })
+}
+
+/// Gradients of one block.
+pub(crate) struct BlockGrads<T> {
+    /// Packed parameter gradient (length `n_params`).
+    pub theta: Vec<T>,
+    /// Gradient for `x_0`, `(rows, d)`.
+    pub x0: Vec<T>,
+    /// Gradient for the context rows, `(rows, c)`, when asked for.
+    pub ctx: Option<Vec<T>>,
+}
+
+/// Backward pass of a block from the output gradient `g` `(rows, d + 2)`.
+pub(crate) fn backward<T: Real>(
+    spec: &PathSpec,
+    blk: &Block<'_, T>,
+    mut tape: BlockTape<T>,
+    g: &[T],
+    want_ctx: bool,
+) -> BlockGrads<T> {
+    let (d, rows, n) = (spec.d, blk.rows, spec.n_steps);
+    let offs = |s: &Option<NetShape>| s.as_ref().map(NetShape::offsets);
+    let (po, co): (Option<Offsets>, Option<Offsets>) = (offs(&spec.prior), offs(&spec.control));
+    let inv_sigma: Vec<T> = spec.sigma.iter().map(|&s| T::from_f64(1.0 / s)).collect();
+    let h = T::from_f64(spec.h);
+    let mut lambda = vec![T::ZERO; rows * d];
+    let mut g_cost = vec![T::ZERO; rows];
+    let mut g_stoch = vec![T::ZERO; rows];
+    for r in 0..rows {
+        let gr = &g[r * (d + 2)..(r + 1) * (d + 2)];
+        lambda[r * d..(r + 1) * d].copy_from_slice(&gr[..d]);
+        g_cost[r] = gr[d];
+        g_stoch[r] = gr[d + 1];
+    }
+    let c = spec.control.as_ref().map_or(0, |s| s.c);
+    let mut g_ctx = (want_ctx && c > 0 && blk.ctx.is_some()).then(|| vec![T::ZERO; rows * c]);
+    let w_max = [&spec.prior, &spec.control]
+        .iter()
+        .filter_map(|s| s.as_ref().map(|s| s.w))
+        .max()
+        .unwrap_or(0);
+    let mut scratch = vec![T::ZERO; rows * w_max];
+    for k in (0..n).rev() {
+        let dw = blk.dw(spec, k);
+        let span = k * rows * d..(k + 1) * rows * d;
+        // Output gradients of both networks from λ_{k+1}, before λ moves to step k.
+        if let Some(tp) = &mut tape.control {
+            let gu = &mut tp.g_out[span.clone()];
+            let u = &tape.us[span.clone()];
+            for r in 0..rows {
+                // d cost/d v = h v (cost = ½ h Σ v²); d stoch/d v = ΔW.
+                let (gc, gs) = (g_cost[r] * h, g_stoch[r]);
+                for j in 0..d {
+                    let i = r * d + j;
+                    let v = u[i] * inv_sigma[j];
+                    gu[i] = h * lambda[i] + (gc * v + gs * dw[i]) * inv_sigma[j];
+                }
+            }
+        }
+        if let Some(tp) = &mut tape.prior {
+            for (gb, &l) in tp.g_out[span.clone()].iter_mut().zip(&lambda) {
+                *gb = h * l;
+            }
+        }
+        if let (Some(s), Some(o), Some(tp)) = (&spec.control, &co, &mut tape.control) {
+            let (mut st, gout) = tp.split(k, rows, s);
+            net::backward_step(
+                s,
+                o,
+                blk.theta,
+                gout,
+                rows,
+                &mut st,
+                &mut scratch,
+                &mut lambda,
+                g_ctx.as_deref_mut(),
+            );
+        }
+        if let (Some(s), Some(o), Some(tp)) = (&spec.prior, &po, &mut tape.prior) {
+            let (mut st, gout) = tp.split(k, rows, s);
+            net::backward_step(
+                s,
+                o,
+                blk.theta,
+                gout,
+                rows,
+                &mut st,
+                &mut scratch,
+                &mut lambda,
+                None,
+            );
+        }
+    }
+    let times = spec.times::<T>();
+    let mut grad = vec![T::ZERO; spec.n_params];
+    if let (Some(s), Some(o), Some(tp)) = (&spec.prior, &po, &tape.prior) {
+        net::parameter_grads(s, o, tp, &tape.xs, None, &times, rows, &mut grad);
+    }
+    if let (Some(s), Some(o), Some(tp)) = (&spec.control, &co, &tape.control) {
+        net::parameter_grads(s, o, tp, &tape.xs, blk.ctx, &times, rows, &mut grad);
+    }
+    BlockGrads {
+        theta: grad,
+        x0: lambda,
+        ctx: g_ctx,
+    }
+}

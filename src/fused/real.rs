@@ -1,0 +1,120 @@
+//! The element types the fused kernel runs in (f32 and f64) and their activations.
+
+use std::ops::{Add, AddAssign, Div, Mul, MulAssign, Sub};
+
+use candle_core::CpuStorage;
+
+use crate::ops::{sigmoid_f32, sigmoid_f64, tanh_f32, Activation};
+
+/// A floating-point element type of the fused kernel.
+pub(crate) trait Real:
+    Copy
+    + Default
+    + Send
+    + Sync
+    + PartialOrd
+    + candle_core::WithDType
+    + 'static
+    + Add<Output = Self>
+    + Sub<Output = Self>
+    + Mul<Output = Self>
+    + Div<Output = Self>
+    + AddAssign
+    + MulAssign
+{
+    const ZERO: Self;
+    const ONE: Self;
+
+    /// SiLU value and derivative, the same formulas as the generic ops of [`crate::ops`].
+    fn silu(x: Self) -> (Self, Self);
+
+    /// tanh value and derivative, as in [`crate::ops`].
+    fn tanh(x: Self) -> (Self, Self);
+
+    /// The values of a CPU storage of this type.
+    fn slice(s: &CpuStorage) -> Option<&[Self]>;
+
+    /// A CPU storage holding `v`.
+    fn storage(v: Vec<Self>) -> CpuStorage;
+}
+
+impl Real for f32 {
+    const ZERO: Self = 0.0;
+    const ONE: Self = 1.0;
+
+    #[inline(always)]
+    fn silu(x: Self) -> (Self, Self) {
+        let s = sigmoid_f32(x);
+        (x * s, s * (1.0 + x * (1.0 - s)))
+    }
+
+    #[inline(always)]
+    fn tanh(x: Self) -> (Self, Self) {
+        let t = tanh_f32(x);
+        (t, 1.0 - t * t)
+    }
+
+    fn slice(s: &CpuStorage) -> Option<&[Self]> {
+        match s {
+            CpuStorage::F32(v) => Some(v),
+            _ => None,
+        }
+    }
+
+    fn storage(v: Vec<Self>) -> CpuStorage {
+        CpuStorage::F32(v)
+    }
+}
+
+impl Real for f64 {
+    const ZERO: Self = 0.0;
+    const ONE: Self = 1.0;
+
+    #[inline(always)]
+    fn silu(x: Self) -> (Self, Self) {
+        let s = sigmoid_f64(x);
+        (x * s, s * (1.0 + x * (1.0 - s)))
+    }
+
+    #[inline(always)]
+    fn tanh(x: Self) -> (Self, Self) {
+        let t = x.tanh();
+        (t, 1.0 - t * t)
+    }
+
+    fn slice(s: &CpuStorage) -> Option<&[Self]> {
+        match s {
+            CpuStorage::F64(v) => Some(v),
+            _ => None,
+        }
+    }
+
+    fn storage(v: Vec<Self>) -> CpuStorage {
+        CpuStorage::F64(v)
+    }
+}
+
+/// Applies `act` in place to the pre-activations in `h`, writing its derivative to `d`.
+pub(crate) fn activate<T: Real>(act: Activation, h: &mut [T], d: &mut [T]) {
+    match act {
+        Activation::Silu => {
+            for (h, d) in h.iter_mut().zip(d.iter_mut()) {
+                (*h, *d) = T::silu(*h);
+            }
+        }
+        Activation::Tanh => {
+            for (h, d) in h.iter_mut().zip(d.iter_mut()) {
+                (*h, *d) = T::tanh(*h);
+            }
+        }
+        Activation::Relu => {
+            for (h, d) in h.iter_mut().zip(d.iter_mut()) {
+                let pos = *h > T::ZERO;
+                *d = if pos { T::ONE } else { T::ZERO };
+                if !pos {
+                    *h = T::ZERO;
+                }
+            }
+        }
+    }
+}
