@@ -18,6 +18,7 @@ mod net;
 pub(crate) use net::NetShape;
 mod op;
 mod path;
+mod pool;
 mod real;
 
 use std::sync::{Arc, Mutex};

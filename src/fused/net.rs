@@ -3,7 +3,7 @@
 //! backward pass.
 
 use super::gemm::{add_column_sums, matmul, Op};
-use super::real::{activate, Real};
+use super::real::{activate, mul_in_place, Real};
 use crate::ops::Activation;
 
 /// Shape of a network and where its parameters sit in the packed vector.
@@ -206,12 +206,6 @@ pub(crate) fn backward_step<T: Real>(
     }
 }
 
-fn mul_in_place<T: Real>(a: &mut [T], b: &[T]) {
-    for (a, &b) in a.iter_mut().zip(b) {
-        *a *= b;
-    }
-}
-
 /// The whole-path saved buffers of one network on a block, `steps` solver steps of `rows`
 /// rows: for each hidden layer, post-activations and derivatives (later δ), each
 /// `(steps·rows, w)`, and the output gradients `(steps·rows, d)`.
@@ -224,10 +218,19 @@ pub(crate) struct NetTape<T> {
 impl<T: Real> NetTape<T> {
     pub fn new(net: &NetShape, steps: usize, rows: usize) -> Self {
         let n = steps * rows * net.w;
+        let pool = T::pool();
         Self {
-            h: (0..net.depth).map(|_| vec![T::ZERO; n]).collect(),
-            da: (0..net.depth).map(|_| vec![T::ZERO; n]).collect(),
-            g_out: vec![T::ZERO; steps * rows * net.d],
+            h: (0..net.depth).map(|_| pool.take(n)).collect(),
+            da: (0..net.depth).map(|_| pool.take(n)).collect(),
+            g_out: pool.take(steps * rows * net.d),
+        }
+    }
+
+    /// Hands the buffers back to the pool.
+    pub fn release(self) {
+        let pool = T::pool();
+        for v in self.h.into_iter().chain(self.da).chain([self.g_out]) {
+            pool.give(v);
         }
     }
 

@@ -71,13 +71,14 @@ pub(crate) fn forward<T: Real>(
     let (po, co) = (offs(&spec.prior), offs(&spec.control));
     let mut prior_tape = spec.prior.as_ref().map(|s| NetTape::new(s, slots, rows));
     let mut control_tape = spec.control.as_ref().map(|s| NetTape::new(s, slots, rows));
+    let pool = T::pool();
     let mut xs = if keep {
-        vec![T::ZERO; n * rows * d]
+        pool.take(n * rows * d)
     } else {
         Vec::new()
     };
     let mut us = if keep && spec.control.is_some() {
-        vec![T::ZERO; n * rows * d]
+        pool.take(n * rows * d)
     } else {
         Vec::new()
     };
@@ -137,12 +138,30 @@ pub(crate) fn forward<T: Real>(
         o[d] = half_h * cost[r];
         o[d + 1] = stoch[r];
     }
-    keep.then_some(BlockTape {
+    let tape = BlockTape {
         xs,
         us,
         prior: prior_tape,
         control: control_tape,
-    })
+    };
+    if keep {
+        Some(tape)
+    } else {
+        tape.release();
+        None
+    }
+}
+
+impl<T: Real> BlockTape<T> {
+    /// Hands the buffers back to the pool.
+    fn release(self) {
+        let pool = T::pool();
+        pool.give(self.xs);
+        pool.give(self.us);
+        for t in [self.prior, self.control].into_iter().flatten() {
+            t.release();
+        }
+    }
 }
 
 /// Gradients of one block.
@@ -244,6 +263,7 @@ pub(crate) fn backward<T: Real>(
     if let (Some(s), Some(o), Some(tp)) = (&spec.control, &co, &tape.control) {
         net::parameter_grads(s, o, tp, &tape.xs, blk.ctx, &times, rows, &mut grad);
     }
+    tape.release();
     BlockGrads {
         theta: grad,
         x0: lambda,

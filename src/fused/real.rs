@@ -4,6 +4,7 @@ use std::ops::{Add, AddAssign, Div, Mul, MulAssign, Sub};
 
 use candle_core::CpuStorage;
 
+use super::pool::Pool;
 use crate::ops::{sigmoid_f32, sigmoid_f64, tanh_f32, Activation};
 
 /// A floating-point element type of the fused kernel.
@@ -36,6 +37,9 @@ pub(crate) trait Real:
 
     /// A CPU storage holding `v`.
     fn storage(v: Vec<Self>) -> CpuStorage;
+
+    /// The process-wide pool of reusable buffers of this type.
+    fn pool() -> &'static Pool<Self>;
 }
 
 impl Real for f32 {
@@ -63,6 +67,11 @@ impl Real for f32 {
 
     fn storage(v: Vec<Self>) -> CpuStorage {
         CpuStorage::F32(v)
+    }
+
+    fn pool() -> &'static Pool<Self> {
+        static POOL: Pool<f32> = Pool::new();
+        &POOL
     }
 }
 
@@ -92,10 +101,60 @@ impl Real for f64 {
     fn storage(v: Vec<Self>) -> CpuStorage {
         CpuStorage::F64(v)
     }
+
+    fn pool() -> &'static Pool<Self> {
+        static POOL: Pool<f64> = Pool::new();
+        &POOL
+    }
+}
+
+/// `a ∘= b` elementwise.
+pub(crate) fn mul_in_place<T: Real>(a: &mut [T], b: &[T]) {
+    pulp::Arch::new().dispatch(MulInPlace { a, b })
 }
 
 /// Applies `act` in place to the pre-activations in `h`, writing its derivative to `d`.
 pub(crate) fn activate<T: Real>(act: Activation, h: &mut [T], d: &mut [T]) {
+    pulp::Arch::new().dispatch(Activate { act, h, d })
+}
+
+// The loops below run inside `pulp`'s dispatch: their bodies are compiled for the widest
+// vector instructions the CPU has (AVX2 and FMA where present, chosen at run time), so that
+// the compiler vectorises them for those.
+
+struct MulInPlace<'a, T> {
+    a: &'a mut [T],
+    b: &'a [T],
+}
+
+impl<T: Real> pulp::WithSimd for MulInPlace<'_, T> {
+    type Output = ();
+
+    #[inline(always)]
+    fn with_simd<S: pulp::Simd>(self, _simd: S) {
+        for (a, &b) in self.a.iter_mut().zip(self.b) {
+            *a *= b;
+        }
+    }
+}
+
+struct Activate<'a, T> {
+    act: Activation,
+    h: &'a mut [T],
+    d: &'a mut [T],
+}
+
+impl<T: Real> pulp::WithSimd for Activate<'_, T> {
+    type Output = ();
+
+    #[inline(always)]
+    fn with_simd<S: pulp::Simd>(self, _simd: S) {
+        activate_inner(self.act, self.h, self.d)
+    }
+}
+
+#[inline(always)]
+fn activate_inner<T: Real>(act: Activation, h: &mut [T], d: &mut [T]) {
     match act {
         Activation::Silu => {
             for (h, d) in h.iter_mut().zip(d.iter_mut()) {
