@@ -5,7 +5,7 @@
 //! forward pass works in preallocated buffers with the `gemm` kernels, keeps the hidden
 //! activations and their derivatives on a tape, and the backward pass is written by hand
 //! (the adjoint recursion `λ_k = λ_{k+1} + (∂f/∂x)ᵀ h λ_{k+1}` of the Euler–Maruyama map,
-//! with the weight gradients of all steps summed by one matrix product per weight). The
+//! with each step's weight gradients added while its activations are still in cache). The
 //! generic path records several autodiff nodes per layer and step instead; the values and
 //! gradients are the same up to rounding (tests compare the two).
 //!

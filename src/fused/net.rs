@@ -248,91 +248,71 @@ impl<T: Real> NetTape<T> {
     }
 }
 
-/// Parameter gradients from a filled tape (δ in `da`, output gradients in `g_out`), added to
-/// `grad` (the packed gradient vector): one product over all `steps·rows` rows per weight.
-/// `xs` holds the network inputs `x_k` `(steps·rows, d)`, `ctx` the context `(rows, c)`,
-/// `times` the step times.
+/// Adds the parameter gradients of one step to `grad`, from the step's tape after
+/// [`backward_step`] (δ in `da`), the output gradient `g`, the input `x` and time `t`;
+/// the context weight's gradient is left to the caller (δ_1 summed over steps, in
+/// `delta1_sum`).
 #[allow(clippy::too_many_arguments)]
-pub(crate) fn parameter_grads<T: Real>(
+pub(crate) fn step_param_grads<T: Real>(
     net: &NetShape,
     o: &Offsets,
-    tape: &NetTape<T>,
-    xs: &[T],
-    ctx: Option<&[T]>,
-    times: &[T],
+    tape: &StepTape<'_, T>,
+    g: &[T],
+    x: &[T],
+    t: T,
     rows: usize,
     grad: &mut [T],
+    delta1_sum: Option<&mut [T]>,
 ) {
-    let (d, c, w) = (net.d, net.c, net.w);
-    let n = times.len() * rows;
+    let (d, w) = (net.d, net.w);
     let top = net.depth - 1;
     matmul(
         &mut grad[o.wo..o.wo + d * w],
-        &tape.g_out,
+        g,
         Op::T,
-        &tape.h[top],
+        &*tape.h[top],
         Op::N,
-        (d, w, n),
+        (d, w, rows),
         true,
         1,
     );
-    add_column_sums(&mut grad[o.bo..o.bo + d], &tape.g_out[..n * d], d);
+    add_column_sums(&mut grad[o.bo..o.bo + d], g, d);
     for l in (1..net.depth).rev() {
         let (wl, bl) = o.hidden[l - 1];
         matmul(
             &mut grad[wl..wl + w * w],
-            &tape.da[l],
+            &*tape.da[l],
             Op::T,
-            &tape.h[l - 1],
+            &*tape.h[l - 1],
             Op::N,
-            (w, w, n),
+            (w, w, rows),
             true,
             1,
         );
-        add_column_sums(&mut grad[bl..bl + w], &tape.da[l][..n * w], w);
+        add_column_sums(&mut grad[bl..bl + w], &*tape.da[l], w);
     }
-    let delta1 = &tape.da[0];
+    let delta1 = &*tape.da[0];
     matmul(
         &mut grad[o.w1..o.w1 + w * d],
         delta1,
         Op::T,
-        xs,
+        x,
         Op::N,
-        (w, d, n),
+        (w, d, rows),
         true,
         1,
     );
-    // Bias, time weight and (for the context weight) the per-row sum over steps.
-    let mut per_row = if c > 0 && ctx.is_some() {
-        vec![T::ZERO; rows * w]
-    } else {
-        Vec::new()
-    };
-    let mut col = vec![T::ZERO; w];
-    for (k, &t) in times.iter().enumerate() {
-        let block = &delta1[k * rows * w..(k + 1) * rows * w];
-        col.fill(T::ZERO);
-        add_column_sums(&mut col, block, w);
-        for j in 0..w {
-            grad[o.b1 + j] += col[j];
-            grad[o.wt + j] += t * col[j];
-        }
-        if !per_row.is_empty() {
-            for (a, &b) in per_row.iter_mut().zip(block) {
-                *a += b;
-            }
+    let (b1, rest) = grad[o.b1..].split_at_mut(w);
+    let wt = &mut rest[o.wt - o.b1 - w..o.wt - o.b1];
+    for row in delta1.chunks_exact(w) {
+        for ((b, tw), &v) in b1.iter_mut().zip(wt.iter_mut()).zip(row) {
+            *b += v;
+            *tw += t * v;
         }
     }
-    if let (Some(ctx), false) = (ctx, per_row.is_empty()) {
-        matmul(
-            &mut grad[o.wc..o.wc + w * c],
-            &per_row,
-            Op::T,
-            ctx,
-            Op::N,
-            (w, c, rows),
-            true,
-            1,
-        );
+    if let Some(sum) = delta1_sum {
+        for (a, &b) in sum.iter_mut().zip(delta1) {
+            *a += b;
+        }
     }
 }

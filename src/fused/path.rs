@@ -204,6 +204,12 @@ pub(crate) fn backward<T: Real>(
         .max()
         .unwrap_or(0);
     let mut scratch = vec![T::ZERO; rows * w_max];
+    let times = spec.times::<T>();
+    let mut grad = vec![T::ZERO; spec.n_params];
+    let mut delta1_sum = match (&spec.control, blk.ctx) {
+        (Some(s), Some(_)) if s.c > 0 => vec![T::ZERO; rows * s.w],
+        _ => Vec::new(),
+    };
     for k in (0..n).rev() {
         let dw = blk.dw(spec, k);
         let span = k * rows * d..(k + 1) * rows * d;
@@ -239,6 +245,18 @@ pub(crate) fn backward<T: Real>(
                 &mut lambda,
                 g_ctx.as_deref_mut(),
             );
+            let sum = (!delta1_sum.is_empty()).then_some(&mut delta1_sum[..]);
+            net::step_param_grads(
+                s,
+                o,
+                &st,
+                gout,
+                &tape.xs[span.clone()],
+                times[k],
+                rows,
+                &mut grad,
+                sum,
+            );
         }
         if let (Some(s), Some(o), Some(tp)) = (&spec.prior, &po, &mut tape.prior) {
             let (mut st, gout) = tp.split(k, rows, s);
@@ -253,15 +271,33 @@ pub(crate) fn backward<T: Real>(
                 &mut lambda,
                 None,
             );
+            net::step_param_grads(
+                s,
+                o,
+                &st,
+                gout,
+                &tape.xs[span.clone()],
+                times[k],
+                rows,
+                &mut grad,
+                None,
+            );
         }
     }
-    let times = spec.times::<T>();
-    let mut grad = vec![T::ZERO; spec.n_params];
-    if let (Some(s), Some(o), Some(tp)) = (&spec.prior, &po, &tape.prior) {
-        net::parameter_grads(s, o, tp, &tape.xs, None, &times, rows, &mut grad);
-    }
-    if let (Some(s), Some(o), Some(tp)) = (&spec.control, &co, &tape.control) {
-        net::parameter_grads(s, o, tp, &tape.xs, blk.ctx, &times, rows, &mut grad);
+    if let (Some(s), Some(o), Some(ctx)) = (&spec.control, &co, blk.ctx) {
+        if !delta1_sum.is_empty() {
+            let (w, c) = (s.w, s.c);
+            super::gemm::matmul(
+                &mut grad[o.wc..o.wc + w * c],
+                &delta1_sum,
+                super::gemm::Op::T,
+                ctx,
+                super::gemm::Op::N,
+                (w, c, rows),
+                true,
+                1,
+            );
+        }
     }
     tape.release();
     BlockGrads {
