@@ -98,7 +98,7 @@ mod train;
 pub use data::{split_rows, Standardizer, Table};
 pub use demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
 pub use diffusion::Diffusion;
-pub use drift::{Drift, FnDrift, MlpConfig, ModuleDrift, TimeMlp};
+pub use drift::{Drift, FnDrift, FusedForm, MlpConfig, ModuleDrift, TimeMlp};
 pub use error::{Error, Result};
 pub use latent::{
     Decoder, DecoderConfig, DecoderKind, LatentConfig, LatentModel, PathTerms, PriorFactory,

@@ -186,3 +186,98 @@ fn prior_only_relu_single_layer_matches() {
         1e-10,
     );
 }
+
+/// The tabular model's free energy (prior network, control network plus the decoder-score
+/// feedback term, full-covariance Gaussian observation) and its gradient for every parameter.
+fn latent_model_run(precision: Precision, fused: bool) -> (f64, Vec<(String, Vec<f64>)>) {
+    let (rows, d) = (200, 3);
+    let cfg = LatentConfig {
+        prior: MlpConfig {
+            width: 16,
+            zero_output: false,
+            ..Default::default()
+        },
+        control: MlpConfig {
+            width: 16,
+            activation: Activation::Tanh,
+            zero_output: false,
+            ..Default::default()
+        },
+        solver: SolverConfig {
+            n_steps: 10,
+            fused_networks: fused,
+            ..Default::default()
+        },
+        sigma: 0.9,
+        precision,
+        ..Default::default()
+    };
+    let model = LatentModel::new(&cfg, d, 4).unwrap();
+    // Correlated rows so the fitted decoder, precision factor and gains are all non-trivial.
+    let z = standard_normals(&mut generator(4, 7), rows * d);
+    let data: Vec<f64> = z
+        .chunks_exact(d)
+        .flat_map(|r| [r[0], 0.6 * r[0] + 0.8 * r[1], r[2] - 0.3 * r[1]])
+        .collect();
+    model.init_from_data(&data).unwrap();
+    let dev = Device::Cpu;
+    let y = Tensor::from_vec(data, (rows, d), &dev)
+        .unwrap()
+        .to_dtype(model.dtype())
+        .unwrap();
+    let noise = cfg
+        .solver
+        .sample_noise(&mut generator(4, 8), rows, d, model.dtype(), &dev)
+        .unwrap();
+    let fe = model.free_energy(&y, &noise).unwrap();
+    let loss = fe
+        .loss
+        .to_dtype(DType::F64)
+        .unwrap()
+        .to_scalar::<f64>()
+        .unwrap();
+    let grads = fe.loss.backward().unwrap();
+    let mut g = Vec::new();
+    for (name, v) in sorted_vars(model.varmap()).unwrap() {
+        if let Some(t) = grads.get(v.as_tensor()) {
+            let t = t.flatten_all().unwrap().to_dtype(DType::F64).unwrap();
+            g.push((name, t.to_vec1().unwrap()));
+        }
+    }
+    (loss, g)
+}
+
+#[test]
+fn tabular_model_with_score_feedback_matches_generic_autodiff() {
+    for (precision, tol) in [(Precision::F64, 1e-10), (Precision::F32, 1e-5)] {
+        let (l_fast, g_fast) = latent_model_run(precision, true);
+        let (l_gen, g_gen) = latent_model_run(precision, false);
+        assert!(
+            ((l_fast - l_gen) / l_gen).abs() < tol,
+            "{precision:?}: loss {l_fast} vs {l_gen}"
+        );
+        let names: Vec<_> = g_gen.iter().map(|x| x.0.clone()).collect();
+        assert_eq!(
+            g_fast.iter().map(|x| x.0.clone()).collect::<Vec<_>>(),
+            names
+        );
+        // The gains, decoder and precision factor reach the loss through the feedback term.
+        for must in [
+            "control.score_gain_a",
+            "control.score_gain_b",
+            "decoder.linear.weight",
+        ] {
+            assert!(
+                names.iter().any(|n| n == must),
+                "no gradient for {must}: {names:?}"
+            );
+        }
+        for ((name, a), (_, b)) in g_fast.iter().zip(&g_gen) {
+            let r = rel(a, b);
+            assert!(
+                r < tol,
+                "{precision:?} {name}: gradients differ, relative {r:e}"
+            );
+        }
+    }
+}

@@ -110,6 +110,7 @@ fn tensor_solver_matches_scalar_loop() {
             scheme,
             t_end: 1.5,
             keep_path: true,
+            fused_networks: false,
         };
         let noise = cfg
             .sample_noise(&mut generator(9, 0), batch, d, DType::F64, &dev)
@@ -176,6 +177,25 @@ fn tensor_solver_matches_scalar_loop() {
             }
             assert_rel("control cost", costs[i], cost, 1e-12);
             assert_rel("log weight", logw[i], -stoch - cost, 1e-12);
+        }
+        if scheme == Scheme::EulerMaruyama {
+            // The fused kernel for built-in networks against the same checked values.
+            let fused_cfg = SolverConfig {
+                keep_path: false,
+                fused_networks: true,
+                ..cfg.clone()
+            };
+            let q = simulate(&sde, &fused_cfg, &x0, &noise, Some(&ctx)).unwrap();
+            let end = path[n].to_vec2::<f64>().unwrap();
+            let q_end = q.end.to_vec2::<f64>().unwrap();
+            let (q_cost, q_logw) = (vec1(&q.control_cost), vec1(&q.log_weight));
+            for i in 0..batch {
+                for j in 0..d {
+                    assert!((q_end[i][j] - end[i][j]).abs() < 1e-12, "fused end {i} {j}");
+                }
+                assert_rel("fused control cost", q_cost[i], costs[i], 1e-12);
+                assert_rel("fused log weight", q_logw[i], logw[i], 1e-12);
+            }
         }
     }
 }

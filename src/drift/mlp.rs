@@ -235,8 +235,11 @@ impl TimeMlp {
 }
 
 impl Drift for TimeMlp {
-    fn as_time_mlp(&self) -> Option<&TimeMlp> {
-        Some(self)
+    fn fused_form(&self) -> Option<super::FusedForm<'_>> {
+        Some(super::FusedForm {
+            network: self,
+            feedback: None,
+        })
     }
 
     fn dim(&self) -> usize {

@@ -58,13 +58,43 @@ pub trait Drift: Send + Sync {
         None
     }
 
-    /// The built-in network behind this drift, if it is one. The solver then runs the whole
-    /// path through a fused kernel with a hand-written backward pass (see
-    /// [`crate::SolverConfig::fused_networks`]). Custom drifts keep the default `None` and go
-    /// through candle's generic autodiff.
-    fn as_time_mlp(&self) -> Option<&TimeMlp> {
+    /// How the solver's fused kernel can run this drift (see
+    /// [`crate::SolverConfig::fused_networks`]): only the crate's built-in drifts return one
+    /// (a [`FusedForm`] cannot be built outside the crate). Custom drifts keep the default
+    /// `None` and go through candle's generic autodiff.
+    fn fused_form(&self) -> Option<FusedForm<'_>> {
         None
     }
+}
+
+/// A drift in the form the fused whole-path kernel runs: a built-in [`TimeMlp`], optionally
+/// plus a linear feedback term `G(t) ⊙ (C − x A)` (the tabular model's score term). Returned by
+/// [`Drift::fused_form`]; only the crate creates these.
+#[derive(Clone, Copy)]
+pub struct FusedForm<'a> {
+    pub(crate) network: &'a TimeMlp,
+    pub(crate) feedback: Option<&'a dyn LinearFeedback>,
+}
+
+impl std::fmt::Debug for FusedForm<'_> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("FusedForm")
+            .field("network", self.network)
+            .field("feedback", &self.feedback.is_some())
+            .finish()
+    }
+}
+
+/// The feedback term `G(t_k) ⊙ (C − x A)` added to a network's output, as tensors that
+/// keep their autodiff history.
+pub(crate) trait LinearFeedback: Send + Sync {
+    /// `(C, A, G)` for the context rows `context` `(batch, c)` and the step times `times`:
+    /// `C` `(batch, d)`, `A` `(d, d)` and `G` `(times.len(), d)`.
+    fn terms(
+        &self,
+        context: &Tensor,
+        times: &[f64],
+    ) -> candle_core::Result<(Tensor, Tensor, Tensor)>;
 }
 
 impl<D: Drift + ?Sized> Drift for Box<D> {
@@ -80,8 +110,8 @@ impl<D: Drift + ?Sized> Drift for Box<D> {
     fn detached(&self) -> Option<Box<dyn Drift>> {
         (**self).detached()
     }
-    fn as_time_mlp(&self) -> Option<&TimeMlp> {
-        (**self).as_time_mlp()
+    fn fused_form(&self) -> Option<FusedForm<'_>> {
+        (**self).fused_form()
     }
 }
 
@@ -98,7 +128,7 @@ impl<D: Drift + ?Sized> Drift for std::sync::Arc<D> {
     fn detached(&self) -> Option<Box<dyn Drift>> {
         (**self).detached()
     }
-    fn as_time_mlp(&self) -> Option<&TimeMlp> {
-        (**self).as_time_mlp()
+    fn fused_form(&self) -> Option<FusedForm<'_>> {
+        (**self).fused_form()
     }
 }

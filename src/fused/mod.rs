@@ -1,6 +1,8 @@
 //! The fused whole-path kernel for the built-in networks.
 //!
-//! When every drift of an [`Sde`] is a built-in [`TimeMlp`], σ is fixed and the scheme is
+//! When every drift of an [`Sde`] is a built-in [`crate::TimeMlp`] (the tabular model's
+//! control also adds a linear feedback term `G(t) ⊙ (C − x A)`, see
+//! [`crate::FusedForm`]), σ is fixed and the scheme is
 //! Euler–Maruyama, [`crate::simulate`] runs the whole path as **one** candle operation: the
 //! forward pass works in preallocated buffers with the `gemm` kernels, keeps the hidden
 //! activations and their derivatives on a tape, and the backward pass is written by hand
@@ -25,24 +27,25 @@ use std::sync::{Arc, Mutex};
 
 use candle_core::{DType, Tensor};
 
-use crate::drift::{Drift, TimeMlp};
+use crate::drift::{Drift, FusedForm};
 use crate::error::Result;
 use crate::noise::BrownianIncrements;
 use crate::solver::{Paths, Scheme, Sde, SolverConfig};
 
 use op::PathOp;
-use path::PathSpec;
+use path::{FeedbackOffsets, PathSpec};
 
-/// Runs `simulate` through the fused kernel, or returns `None` when it does not apply (a
-/// custom drift, learned σ, SRA1, a kept path, another dtype or device).
-/// `Some(None)` for no drift, `Some(Some(net))` for a built-in network, `None` otherwise.
-fn as_mlp<'a>(d: Option<&'a dyn Drift>) -> Option<Option<&'a TimeMlp>> {
+/// `Some(None)` for no drift, `Some(Some(form))` for a drift the kernel runs, `None`
+/// otherwise.
+fn form_of<'a>(d: Option<&'a dyn Drift>) -> Option<Option<FusedForm<'a>>> {
     match d {
         None => Some(None),
-        Some(d) => d.as_time_mlp().map(Some),
+        Some(d) => d.fused_form().map(Some),
     }
 }
 
+/// Runs `simulate` through the fused kernel, or returns `None` when it does not apply (a
+/// custom drift, learned σ, SRA1, a kept path, another dtype or device).
 pub(crate) fn try_simulate(
     sde: &Sde<'_>,
     cfg: &SolverConfig,
@@ -60,22 +63,28 @@ pub(crate) fn try_simulate(
     if sde.diffusion().is_learned() {
         return Ok(None);
     }
-    let (Some(prior), Some(control)) = (as_mlp(sde.prior()), as_mlp(sde.control())) else {
+    let (Some(prior), Some(control)) = (form_of(sde.prior()), form_of(sde.control())) else {
         return Ok(None);
     };
     if prior.is_none() && control.is_none() {
         return Ok(None);
     }
-    if prior.is_some_and(|p| p.context_dim() > 0) {
+    if prior.is_some_and(|p| p.network.context_dim() > 0 || p.feedback.is_some()) {
         // The prior never sees a context; the generic path reports the error.
         return Ok(None);
     }
     let (batch, d) = x0.dims2()?;
+    let has_ctx = control.is_some_and(|c| c.network.context_dim() > 0);
+    let ctx = match (has_ctx, context) {
+        (true, Some(c)) => c.contiguous()?,
+        (true, None) => return Ok(None),
+        (false, _) => Tensor::zeros(1, dtype, x0.device())?,
+    };
     let mut parts = Vec::new();
     let mut offset = 0;
-    let mut shape_of = |m: Option<&TimeMlp>| -> Option<NetShape> {
+    let mut shape_of = |m: Option<FusedForm<'_>>| -> Option<NetShape> {
         m.map(|m| {
-            let (s, p) = m.fused_parts(offset);
+            let (s, p) = m.network.fused_parts(offset);
             offset += s.len();
             parts.extend(p);
             s
@@ -83,7 +92,28 @@ pub(crate) fn try_simulate(
     };
     let prior_shape = shape_of(prior);
     let control_shape = shape_of(control);
-    let has_ctx = control.is_some_and(|c| c.context_dim() > 0);
+    let feedback = match control.and_then(|c| c.feedback) {
+        Some(fb) if has_ctx => {
+            let times: Vec<f64> = (0..cfg.n_steps).map(|k| k as f64 * cfg.step()).collect();
+            let (c, a, g) = fb.terms(&ctx, &times)?;
+            let want = [(batch, d), (d, d), (cfg.n_steps, d)];
+            for (t, want) in [&c, &a, &g].into_iter().zip(want) {
+                if t.dims2()? != want {
+                    return Err(crate::Error::shape("feedback term", want, t.dims()));
+                }
+            }
+            let fo = FeedbackOffsets {
+                c: offset,
+                a: offset + batch * d,
+                g: offset + batch * d + d * d,
+            };
+            offset = fo.g + cfg.n_steps * d;
+            parts.extend([c, a, g]);
+            Some(fo)
+        }
+        Some(_) => return Ok(None),
+        None => None,
+    };
     if parts
         .iter()
         .any(|p| p.dtype() != dtype || !p.device().is_cpu())
@@ -96,11 +126,6 @@ pub(crate) fn try_simulate(
         .collect::<candle_core::Result<_>>()?;
     let theta = Tensor::cat(&flat, 0)?;
     let x0 = x0.contiguous()?;
-    let ctx = match (has_ctx, context) {
-        (true, Some(c)) => c.contiguous()?,
-        (true, None) => return Ok(None),
-        (false, _) => Tensor::zeros(1, dtype, x0.device())?,
-    };
     let dw = Tensor::stack(noise.dw(), 0)?.flatten_all()?;
     let noise_data = match dtype {
         DType::F32 => candle_core::CpuStorage::F32(dw.to_vec1()?),
@@ -109,6 +134,7 @@ pub(crate) fn try_simulate(
     let spec = PathSpec {
         prior: prior_shape,
         control: control_shape,
+        feedback,
         d,
         n_steps: cfg.n_steps,
         h: cfg.step(),

@@ -81,6 +81,7 @@ pub(crate) struct StepTape<'a, T> {
 
 /// Forward pass at time `t` on `x` `(rows, d)` (and `ctx` `(rows, c)`), writing the hidden
 /// activations into `tape` and the output `(rows, d)` into `out`.
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn forward<T: Real>(
     net: &NetShape,
     o: &Offsets,

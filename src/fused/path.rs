@@ -1,6 +1,7 @@
 //! The whole Euler–Maruyama path of a block of rows through the fused networks: forward with
 //! a tape of what the backward pass needs, and the hand-written backward pass.
 
+use super::gemm::{matmul, Op};
 use super::net::{self, NetShape, NetTape, Offsets};
 use super::real::Real;
 
@@ -9,6 +10,8 @@ use super::real::Real;
 pub(crate) struct PathSpec {
     pub prior: Option<NetShape>,
     pub control: Option<NetShape>,
+    /// The control's linear feedback term, when it has one.
+    pub feedback: Option<FeedbackOffsets>,
     pub d: usize,
     pub n_steps: usize,
     pub h: f64,
@@ -16,6 +19,15 @@ pub(crate) struct PathSpec {
     pub sigma: Vec<f64>,
     /// Length of the packed parameter vector.
     pub n_params: usize,
+}
+
+/// Where the feedback term `G_k ⊙ (C − x A)` sits in the packed vector: `C` `(batch, d)`,
+/// `A` `(d, d)`, `G` `(N, d)`, each row-major.
+#[derive(Debug, Clone)]
+pub(crate) struct FeedbackOffsets {
+    pub c: usize,
+    pub a: usize,
+    pub g: usize,
 }
 
 impl PathSpec {
@@ -32,6 +44,8 @@ pub(crate) struct BlockTape<T> {
     xs: Vec<T>,
     /// Controls `u_k`, `(N·rows, d)`.
     us: Vec<T>,
+    /// Feedback residuals `e_k = C − x_k A`, `(N·rows, d)`, when there is feedback.
+    es: Vec<T>,
     prior: Option<NetTape<T>>,
     control: Option<NetTape<T>>,
 }
@@ -82,6 +96,13 @@ pub(crate) fn forward<T: Real>(
     } else {
         Vec::new()
     };
+    let fb = spec.feedback.as_ref().filter(|_| spec.control.is_some());
+    let mut es = if keep && fb.is_some() {
+        pool.take(n * rows * d)
+    } else {
+        Vec::new()
+    };
+    let mut e = vec![T::ZERO; if fb.is_some() { rows * d } else { 0 }];
     let sigma: Vec<T> = spec.sigma.iter().map(|&s| T::from_f64(s)).collect();
     let inv_sigma: Vec<T> = spec.sigma.iter().map(|&s| T::from_f64(1.0 / s)).collect();
     let h = T::from_f64(spec.h);
@@ -103,6 +124,28 @@ pub(crate) fn forward<T: Real>(
         if let (Some(s), Some(o), Some(tp)) = (&spec.control, &co, &mut control_tape) {
             let (mut st, _) = tp.split(slot, rows, s);
             net::forward(s, o, blk.theta, &x, blk.ctx, t, rows, &mut st, &mut u);
+            if let Some(f) = fb {
+                // u += G_k ⊙ (C − x A)
+                matmul(
+                    &mut e,
+                    &x,
+                    Op::N,
+                    &blk.theta[f.a..],
+                    Op::N,
+                    (rows, d, d),
+                    false,
+                    1,
+                );
+                let c = &blk.theta[f.c + blk.r0 * d..f.c + (blk.r0 + rows) * d];
+                let g = &blk.theta[f.g + k * d..f.g + (k + 1) * d];
+                for ((e, &c), (u, j)) in e.iter_mut().zip(c).zip(u.iter_mut().zip((0..d).cycle())) {
+                    *e = c - *e;
+                    *u += g[j] * *e;
+                }
+                if keep {
+                    es[k * rows * d..(k + 1) * rows * d].copy_from_slice(&e);
+                }
+            }
             if keep {
                 us[k * rows * d..(k + 1) * rows * d].copy_from_slice(&u);
             }
@@ -141,6 +184,7 @@ pub(crate) fn forward<T: Real>(
     let tape = BlockTape {
         xs,
         us,
+        es,
         prior: prior_tape,
         control: control_tape,
     };
@@ -158,6 +202,7 @@ impl<T: Real> BlockTape<T> {
         let pool = T::pool();
         pool.give(self.xs);
         pool.give(self.us);
+        pool.give(self.es);
         for t in [self.prior, self.control].into_iter().flatten() {
             t.release();
         }
@@ -210,6 +255,8 @@ pub(crate) fn backward<T: Real>(
         (Some(s), Some(_)) if s.c > 0 => vec![T::ZERO; rows * s.w],
         _ => Vec::new(),
     };
+    let fb = spec.feedback.as_ref().filter(|_| spec.control.is_some());
+    let mut neg_gg = vec![T::ZERO; if fb.is_some() { rows * d } else { 0 }];
     for k in (0..n).rev() {
         let dw = blk.dw(spec, k);
         let span = k * rows * d..(k + 1) * rows * d;
@@ -217,13 +264,17 @@ pub(crate) fn backward<T: Real>(
         if let Some(tp) = &mut tape.control {
             let gu = &mut tp.g_out[span.clone()];
             let u = &tape.us[span.clone()];
-            for r in 0..rows {
+            let per_row = gu
+                .chunks_exact_mut(d)
+                .zip(u.chunks_exact(d))
+                .zip(lambda.chunks_exact(d).zip(dw.chunks_exact(d)));
+            for (r, ((gu, u), (l, w))) in per_row.enumerate() {
                 // d cost/d v = h v (cost = ½ h Σ v²); d stoch/d v = ΔW.
                 let (gc, gs) = (g_cost[r] * h, g_stoch[r]);
-                for j in 0..d {
-                    let i = r * d + j;
-                    let v = u[i] * inv_sigma[j];
-                    gu[i] = h * lambda[i] + (gc * v + gs * dw[i]) * inv_sigma[j];
+                let it = u.iter().zip(l).zip(w).zip(&inv_sigma);
+                for (g, (((&u, &l), &w), &is)) in gu.iter_mut().zip(it) {
+                    let v = u * is;
+                    *g = h * l + (gc * v + gs * w) * is;
                 }
             }
         }
@@ -231,6 +282,42 @@ pub(crate) fn backward<T: Real>(
             for (gb, &l) in tp.g_out[span.clone()].iter_mut().zip(&lambda) {
                 *gb = h * l;
             }
+        }
+        if let (Some(f), Some(tp)) = (fb, &tape.control) {
+            // Through u = … + G_k ⊙ (C − x A): gradients for C, G_k, A and x.
+            let gu = &tp.g_out[span.clone()];
+            let e = &tape.es[span.clone()];
+            let g = &blk.theta[f.g + k * d..f.g + (k + 1) * d];
+            let x = &tape.xs[span.clone()];
+            for r in 0..rows {
+                for j in 0..d {
+                    let i = r * d + j;
+                    let gg = gu[i] * g[j];
+                    grad[f.c + (blk.r0 + r) * d + j] += gg;
+                    grad[f.g + k * d + j] += gu[i] * e[i];
+                    neg_gg[i] = T::ZERO - gg;
+                }
+            }
+            matmul(
+                &mut grad[f.a..f.a + d * d],
+                x,
+                Op::T,
+                &neg_gg,
+                Op::N,
+                (d, d, rows),
+                true,
+                1,
+            );
+            matmul(
+                &mut lambda,
+                &neg_gg,
+                Op::N,
+                &blk.theta[f.a..],
+                Op::T,
+                (rows, d, d),
+                true,
+                1,
+            );
         }
         if let (Some(s), Some(o), Some(tp)) = (&spec.control, &co, &mut tape.control) {
             let (mut st, gout) = tp.split(k, rows, s);

@@ -7,7 +7,7 @@ use rand::RngCore;
 
 use super::decoder::Decoder;
 use super::observation::FullGaussian;
-use crate::drift::{Drift, MlpConfig, TimeMlp};
+use crate::drift::{Drift, FusedForm, LinearFeedback, MlpConfig, TimeMlp};
 use crate::error::Result;
 use crate::params::ParamBuilder;
 
@@ -72,9 +72,46 @@ impl ScoreControl {
     }
 }
 
+impl ScoreControl {
+    /// The gain `g(t) = σ² / (exp(a) + exp(b) (1 − t/T))` at each of `times`, `(n, d)`.
+    fn gains(&self, times: &[f64]) -> candle_core::Result<Tensor> {
+        let rest: Vec<f64> = times.iter().map(|t| 1.0 - t / self.t_end).collect();
+        let rest = Tensor::from_vec(rest, (times.len(), 1), self.gain_a.device())?
+            .to_dtype(self.gain_a.dtype())?;
+        let a = self.gain_a.exp()?.unsqueeze(0)?;
+        let b = self.gain_b.exp()?.unsqueeze(0)?;
+        a.broadcast_add(&rest.broadcast_mul(&b)?)?
+            .recip()?
+            .affine(self.sigma2, 0.0)
+    }
+}
+
+/// The score term is affine in `z`: with `M = PᵀP` and the decoder's linear part `W z + b`,
+/// `s(z, y) = (y − b) M W − z WᵀMW`, so `g(t) ⊙ s = G ⊙ (C − z A)` with `C = (y − b) M W`
+/// and `A = WᵀMW`, computed once per path instead of once per step.
+impl LinearFeedback for ScoreControl {
+    fn terms(&self, y: &Tensor, times: &[f64]) -> candle_core::Result<(Tensor, Tensor, Tensor)> {
+        let p = self.observation.factor()?;
+        let pw = p.matmul(self.decoder.linear_weight())?;
+        let a = pw.t()?.matmul(&pw)?;
+        let c = y
+            .broadcast_sub(&self.decoder.linear_bias().unsqueeze(0)?)?
+            .matmul(&p.t()?)?
+            .matmul(&pw)?;
+        Ok((c, a, self.gains(times)?))
+    }
+}
+
 impl Drift for ScoreControl {
     fn dim(&self) -> usize {
         self.mlp.dim()
+    }
+
+    fn fused_form(&self) -> Option<FusedForm<'_>> {
+        Some(FusedForm {
+            network: &self.mlp,
+            feedback: Some(self),
+        })
     }
 
     fn context_dim(&self) -> usize {
@@ -89,9 +126,7 @@ impl Drift for ScoreControl {
             .observation
             .whitened_back(z, y)?
             .matmul(self.decoder.linear_weight())?;
-        let rest = 1.0 - t / self.t_end;
-        let denom = (self.gain_a.exp()? + self.gain_b.exp()?.affine(rest, 0.0)?)?;
-        let gain = denom.recip()?.affine(self.sigma2, 0.0)?.unsqueeze(0)?;
+        let gain = self.gains(&[t])?;
         self.mlp.forward(z, t, Some(y))? + score.broadcast_mul(&gain)?
     }
 }

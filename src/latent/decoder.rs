@@ -122,6 +122,11 @@ impl Decoder {
         &self.weight
     }
 
+    /// The bias `b` of the linear part.
+    pub fn linear_bias(&self) -> &Tensor {
+        &self.bias
+    }
+
     /// The linear part `W z + b`.
     pub fn linear_mean(&self, z: &Tensor) -> candle_core::Result<Tensor> {
         ops::linear(z, &self.weight, Some(&self.bias))

@@ -325,7 +325,7 @@ impl LatentModel {
     /// covariance is singular.
     pub fn init_from_data(&self, rows: &[f64]) -> Result<()> {
         let dd = self.data_dim;
-        if rows.is_empty() || rows.len() % dd != 0 {
+        if rows.is_empty() || !rows.len().is_multiple_of(dd) {
             return Err(Error::shape(
                 "standardised rows (multiple of D)",
                 dd,
@@ -436,7 +436,7 @@ impl LatentModel {
         rng: &mut dyn RngCore,
     ) -> Result<PathTerms> {
         let d = self.data_dim;
-        if rows.is_empty() || rows.len() % d != 0 {
+        if rows.is_empty() || !rows.len().is_multiple_of(d) {
             return Err(Error::shape(
                 "standardised rows (multiple of D)",
                 d,
