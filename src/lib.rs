@@ -57,10 +57,20 @@
 //! [`TabularModel`] evaluates (ELBO and importance-weighted log-likelihood in the data's
 //! units), generates rows and is saved as one safetensors file. See the [`Trainer`] example.
 //!
+//! ## Speed: the fused kernel
+//!
+//! When every drift is a built-in network ([`TimeMlp`], or the tabular model's control), σ is
+//! fixed and the scheme is Euler–Maruyama, [`simulate`] runs the whole path as one operation
+//! with a hand-written backward pass instead of recording autodiff nodes per layer and step
+//! (see [`SolverConfig::fused_networks`]); values and gradients agree with the generic path
+//! up to rounding. Custom drifts go through candle's generic autodiff.
+//!
 //! ## Threads and stack
 //!
-//! Set `RAYON_NUM_THREADS` (to 1 for the usual small networks): when it is unset, candle
-//! re-reads the CPU count on every matrix product. Library entry points that build whole-path
+//! Set `RAYON_NUM_THREADS`: when it is unset, candle re-reads the CPU count on every matrix
+//! product. The fused kernel runs blocks of 128 paths in parallel on that pool (results do
+//! not depend on the thread count); candle's own matrix products are fastest on one thread at
+//! the usual small sizes. Library entry points that build whole-path
 //! autodiff graphs run them on a thread with a large stack ([`run_deep`]), since candle's
 //! backward pass and graph drop are recursive; do the same when you call
 //! `backward()` yourself on paths of thousands of steps.

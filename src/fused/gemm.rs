@@ -88,9 +88,47 @@ pub(crate) fn matmul<T: Real>(
 
 /// Adds the column sums of the row-major `(rows, n)` matrix `a` to `out` (length `n`).
 pub(crate) fn add_column_sums<T: Real>(out: &mut [T], a: &[T], n: usize) {
-    for row in a.chunks_exact(n) {
-        for (o, &v) in out.iter_mut().zip(row) {
-            *o += v;
+    pulp::Arch::new().dispatch(ColumnSums { out, a, n })
+}
+
+/// Copies `row` into every row of the row-major matrix `m`.
+pub(crate) fn fill_rows<T: Real>(m: &mut [T], row: &[T]) {
+    pulp::Arch::new().dispatch(FillRows { m, row })
+}
+
+// Bodies compiled for the CPU's widest vector unit, chosen at run time (see `real.rs`).
+
+struct ColumnSums<'a, T> {
+    out: &'a mut [T],
+    a: &'a [T],
+    n: usize,
+}
+
+impl<T: Real> pulp::WithSimd for ColumnSums<'_, T> {
+    type Output = ();
+
+    #[inline(always)]
+    fn with_simd<S: pulp::Simd>(self, _simd: S) {
+        for row in self.a.chunks_exact(self.n) {
+            for (o, &v) in self.out.iter_mut().zip(row) {
+                *o += v;
+            }
+        }
+    }
+}
+
+struct FillRows<'a, T> {
+    m: &'a mut [T],
+    row: &'a [T],
+}
+
+impl<T: Real> pulp::WithSimd for FillRows<'_, T> {
+    type Output = ();
+
+    #[inline(always)]
+    fn with_simd<S: pulp::Simd>(self, _simd: S) {
+        for r in self.m.chunks_exact_mut(self.row.len()) {
+            r.copy_from_slice(self.row);
         }
     }
 }

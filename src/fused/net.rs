@@ -2,7 +2,7 @@
 //! the packed parameter vector, its forward pass on a block of rows, and the pieces of its
 //! backward pass.
 
-use super::gemm::{add_column_sums, matmul, Op};
+use super::gemm::{add_column_sums, fill_rows, matmul, Op};
 use super::real::{activate, mul_in_place, Real};
 use crate::ops::Activation;
 
@@ -98,11 +98,8 @@ pub(crate) fn forward<T: Real>(
     {
         let h = &mut *tape.h[0];
         let (b1, wt) = (&theta[o.b1..o.b1 + w], &theta[o.wt..o.wt + w]);
-        for row in h.chunks_exact_mut(w) {
-            for ((r, &b), &tw) in row.iter_mut().zip(b1).zip(wt) {
-                *r = b + t * tw;
-            }
-        }
+        let bias: Vec<T> = b1.iter().zip(wt).map(|(&b, &tw)| b + t * tw).collect();
+        fill_rows(h, &bias);
         matmul(h, x, Op::N, &theta[o.w1..], Op::T, (rows, w, d), true, 1);
         if let Some(ctx) = ctx {
             if c > 0 {
@@ -130,12 +127,6 @@ pub(crate) fn forward<T: Real>(
         true,
         1,
     );
-}
-
-fn fill_rows<T: Real>(m: &mut [T], row: &[T]) {
-    for r in m.chunks_exact_mut(row.len()) {
-        r.copy_from_slice(row);
-    }
 }
 
 /// Backward pass of one step: given the output gradient `g` `(rows, d)`, turns the saved
@@ -303,13 +294,11 @@ pub(crate) fn step_param_grads<T: Real>(
         true,
         1,
     );
-    let (b1, rest) = grad[o.b1..].split_at_mut(w);
-    let wt = &mut rest[o.wt - o.b1 - w..o.wt - o.b1];
-    for row in delta1.chunks_exact(w) {
-        for ((b, tw), &v) in b1.iter_mut().zip(wt.iter_mut()).zip(row) {
-            *b += v;
-            *tw += t * v;
-        }
+    let mut col = vec![T::ZERO; w];
+    add_column_sums(&mut col, delta1, w);
+    for (j, &v) in col.iter().enumerate() {
+        grad[o.b1 + j] += v;
+        grad[o.wt + j] += t * v;
     }
     if let Some(sum) = delta1_sum {
         for (a, &b) in sum.iter_mut().zip(delta1) {
