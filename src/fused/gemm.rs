@@ -127,8 +127,18 @@ impl<T: Real> pulp::WithSimd for FillRows<'_, T> {
 
     #[inline(always)]
     fn with_simd<S: pulp::Simd>(self, _simd: S) {
-        for r in self.m.chunks_exact_mut(self.row.len()) {
-            r.copy_from_slice(self.row);
+        // One row, then doubling copies: a few large copies instead of one per row.
+        let n = self.row.len();
+        let len = self.m.len() / n * n;
+        if len == 0 {
+            return;
+        }
+        self.m[..n].copy_from_slice(self.row);
+        let mut done = n;
+        while done < len {
+            let k = done.min(len - done);
+            self.m.copy_within(..k, done);
+            done += k;
         }
     }
 }
