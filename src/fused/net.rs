@@ -133,7 +133,7 @@ pub(crate) fn forward<T: Real>(
 /// derivatives `tape.da[l]` into the pre-activation gradients δ_l (in place), adds the input
 /// gradient `δ_1 W1` to `gx` and, when asked, `δ_1 Wc` to `gctx`. `scratch` holds `rows·w`.
 #[allow(clippy::too_many_arguments)]
-pub(crate) fn backward_step<T: Real>(
+fn backward_step<T: Real>(
     net: &NetShape,
     o: &Offsets,
     theta: &[T],
@@ -245,7 +245,7 @@ impl<T: Real> NetTape<T> {
 /// the context weight's gradient is left to the caller (δ_1 summed over steps, in
 /// `delta1_sum`).
 #[allow(clippy::too_many_arguments)]
-pub(crate) fn step_param_grads<T: Real>(
+fn step_param_grads<T: Real>(
     net: &NetShape,
     o: &Offsets,
     tape: &StepTape<'_, T>,
@@ -305,4 +305,32 @@ pub(crate) fn step_param_grads<T: Real>(
             *a += b;
         }
     }
+}
+
+/// Where one step's backward pass writes: the state gradient λ (`+= δ_1 W1`), the context
+/// gradient when asked for, the packed parameter gradient and the running sum of δ_1 over
+/// steps (for the context weight), when kept.
+pub(crate) struct StepOutputs<'a, T> {
+    pub gx: &'a mut [T],
+    pub gctx: Option<&'a mut [T]>,
+    pub grad: &'a mut [T],
+    pub delta1_sum: Option<&'a mut [T]>,
+}
+
+/// The whole backward pass of one network at step `k` (input `x_k`, time `t`), from the
+/// output gradient already stored in the tape's slot `k`.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn step_backward<T: Real>(
+    net: &NetShape,
+    o: &Offsets,
+    theta: &[T],
+    tape: &mut NetTape<T>,
+    (k, rows): (usize, usize),
+    (x, t): (&[T], T),
+    scratch: &mut [T],
+    out: StepOutputs<'_, T>,
+) {
+    let (mut st, g) = tape.split(k, rows, net);
+    backward_step(net, o, theta, g, rows, &mut st, scratch, out.gx, out.gctx);
+    step_param_grads(net, o, &st, g, x, t, rows, out.grad, out.delta1_sum);
 }

@@ -319,56 +319,26 @@ pub(crate) fn backward<T: Real>(
                 1,
             );
         }
+        let x_k = &tape.xs[span.clone()];
         if let (Some(s), Some(o), Some(tp)) = (&spec.control, &co, &mut tape.control) {
-            let (mut st, gout) = tp.split(k, rows, s);
-            net::backward_step(
-                s,
-                o,
-                blk.theta,
-                gout,
-                rows,
-                &mut st,
-                &mut scratch,
-                &mut lambda,
-                g_ctx.as_deref_mut(),
-            );
-            let sum = (!delta1_sum.is_empty()).then_some(&mut delta1_sum[..]);
-            net::step_param_grads(
-                s,
-                o,
-                &st,
-                gout,
-                &tape.xs[span.clone()],
-                times[k],
-                rows,
-                &mut grad,
-                sum,
-            );
+            let out = net::StepOutputs {
+                gx: &mut lambda,
+                gctx: g_ctx.as_deref_mut(),
+                grad: &mut grad,
+                delta1_sum: (!delta1_sum.is_empty()).then_some(&mut delta1_sum[..]),
+            };
+            let (x, t) = (x_k, times[k]);
+            net::step_backward(s, o, blk.theta, tp, (k, rows), (x, t), &mut scratch, out);
         }
         if let (Some(s), Some(o), Some(tp)) = (&spec.prior, &po, &mut tape.prior) {
-            let (mut st, gout) = tp.split(k, rows, s);
-            net::backward_step(
-                s,
-                o,
-                blk.theta,
-                gout,
-                rows,
-                &mut st,
-                &mut scratch,
-                &mut lambda,
-                None,
-            );
-            net::step_param_grads(
-                s,
-                o,
-                &st,
-                gout,
-                &tape.xs[span.clone()],
-                times[k],
-                rows,
-                &mut grad,
-                None,
-            );
+            let out = net::StepOutputs {
+                gx: &mut lambda,
+                gctx: None,
+                grad: &mut grad,
+                delta1_sum: None,
+            };
+            let (x, t) = (x_k, times[k]);
+            net::step_backward(s, o, blk.theta, tp, (k, rows), (x, t), &mut scratch, out);
         }
     }
     if let (Some(s), Some(o), Some(ctx)) = (&spec.control, &co, blk.ctx) {
