@@ -281,3 +281,31 @@ fn tabular_model_with_score_feedback_matches_generic_autodiff() {
         }
     }
 }
+
+#[test]
+fn fused_results_do_not_depend_on_the_thread_count() {
+    // Blocks of rows run in parallel and their gradients are summed in block order, so the
+    // values and gradients are bit-identical on any number of threads (common practice for
+    // reproducible parallel reductions, no source).
+    let case = || Case {
+        n_steps: 6,
+        ..base(DType::F32)
+    };
+    let on = |threads: usize| {
+        rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .unwrap()
+            .install(|| run(&case(), true))
+    };
+    let bits = |r: (Vec<f64>, Vec<(String, Vec<f64>)>)| -> Vec<u64> {
+        let mut v: Vec<u64> = r.0.iter().map(|x| x.to_bits()).collect();
+        for (_, g) in r.1 {
+            v.extend(g.iter().map(|x| x.to_bits()));
+        }
+        v
+    };
+    let one = bits(on(1));
+    assert_eq!(one, bits(on(3)));
+    assert!(one.len() > 300 * 3);
+}
