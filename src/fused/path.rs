@@ -125,23 +125,7 @@ pub(crate) fn forward<T: Real>(
             let (mut st, _) = tp.split(slot, rows, s);
             net::forward(s, o, blk.theta, &x, blk.ctx, t, rows, &mut st, &mut u);
             if let Some(f) = fb {
-                // u += G_k ⊙ (C − x A)
-                matmul(
-                    &mut e,
-                    &x,
-                    Op::N,
-                    &blk.theta[f.a..],
-                    Op::N,
-                    (rows, d, d),
-                    false,
-                    1,
-                );
-                let c = &blk.theta[f.c + blk.r0 * d..f.c + (blk.r0 + rows) * d];
-                let g = &blk.theta[f.g + k * d..f.g + (k + 1) * d];
-                for ((e, &c), (u, j)) in e.iter_mut().zip(c).zip(u.iter_mut().zip((0..d).cycle())) {
-                    *e = c - *e;
-                    *u += g[j] * *e;
-                }
+                feedback_forward(f, blk, d, k, &x, &mut e, &mut u);
                 if keep {
                     es[k * rows * d..(k + 1) * rows * d].copy_from_slice(&e);
                 }
@@ -150,29 +134,18 @@ pub(crate) fn forward<T: Real>(
                 us[k * rows * d..(k + 1) * rows * d].copy_from_slice(&u);
             }
         }
-        let dw = blk.dw(spec, k);
-        let has_prior = spec.prior.is_some();
-        let has_control = spec.control.is_some();
-        for r in 0..rows {
-            let row = r * d..(r + 1) * d;
-            let (mut c2, mut s1) = (T::ZERO, T::ZERO);
-            for j in 0..d {
-                let i = row.start + j;
-                let mut f = T::ZERO;
-                if has_prior {
-                    f += b[i];
-                }
-                if has_control {
-                    let v = u[i] * inv_sigma[j];
-                    c2 += v * v;
-                    s1 += v * dw[i];
-                    f += u[i];
-                }
-                x[i] += h * f + sigma[j] * dw[i];
-            }
-            cost[r] += c2;
-            stoch[r] += s1;
-        }
+        let drift = StepDrift {
+            prior: spec.prior.is_some().then_some(&b[..]),
+            control: spec.control.is_some().then_some(&u[..]),
+        };
+        euler_step(
+            &mut x,
+            drift,
+            blk.dw(spec, k),
+            (&sigma, &inv_sigma),
+            h,
+            (&mut cost, &mut stoch),
+        );
     }
     let half_h = T::from_f64(0.5 * spec.h);
     for r in 0..rows {
@@ -193,6 +166,81 @@ pub(crate) fn forward<T: Real>(
     } else {
         tape.release();
         None
+    }
+}
+
+/// The feedback term of step `k`: `e = C − x A` (into `e`) and `u += G_k ⊙ e`.
+fn feedback_forward<T: Real>(
+    f: &FeedbackOffsets,
+    blk: &Block<'_, T>,
+    d: usize,
+    k: usize,
+    x: &[T],
+    e: &mut [T],
+    u: &mut [T],
+) {
+    let rows = blk.rows;
+    matmul(
+        e,
+        x,
+        Op::N,
+        &blk.theta[f.a..],
+        Op::N,
+        (rows, d, d),
+        false,
+        1,
+    );
+    let c = &blk.theta[f.c + blk.r0 * d..f.c + (blk.r0 + rows) * d];
+    let g = &blk.theta[f.g + k * d..f.g + (k + 1) * d];
+    for ((e, u), c) in e
+        .chunks_exact_mut(d)
+        .zip(u.chunks_exact_mut(d))
+        .zip(c.chunks_exact(d))
+    {
+        for (((e, u), &c), &g) in e.iter_mut().zip(u).zip(c).zip(g) {
+            *e = c - *e;
+            *u += g * *e;
+        }
+    }
+}
+
+/// The drift parts of one step, `(rows, d)` each, when present.
+#[derive(Clone, Copy)]
+struct StepDrift<'a, T> {
+    prior: Option<&'a [T]>,
+    control: Option<&'a [T]>,
+}
+
+/// `x += h (b + u) + σ ΔW`, with `v = u/σ` adding `|v|²` to `cost` and `v·ΔW` to `stoch`
+/// per row.
+fn euler_step<T: Real>(
+    x: &mut [T],
+    drift: StepDrift<'_, T>,
+    dw: &[T],
+    (sigma, inv_sigma): (&[T], &[T]),
+    h: T,
+    (cost, stoch): (&mut [T], &mut [T]),
+) {
+    let d = sigma.len();
+    for (r, (x, dw)) in x.chunks_exact_mut(d).zip(dw.chunks_exact(d)).enumerate() {
+        let span = r * d..(r + 1) * d;
+        let (mut c2, mut s1) = (T::ZERO, T::ZERO);
+        for j in 0..d {
+            let mut f = T::ZERO;
+            if let Some(b) = drift.prior {
+                f += b[span.start + j];
+            }
+            if let Some(u) = drift.control {
+                let u = u[span.start + j];
+                let v = u * inv_sigma[j];
+                c2 += v * v;
+                s1 += v * dw[j];
+                f += u;
+            }
+            x[j] += h * f + sigma[j] * dw[j];
+        }
+        cost[r] += c2;
+        stoch[r] += s1;
     }
 }
 
