@@ -284,16 +284,15 @@ fn step_param_grads<T: Real>(
         add_column_sums(&mut grad[bl..bl + w], &*tape.da[l], w);
     }
     let delta1 = &*tape.da[0];
-    matmul(
-        &mut grad[o.w1..o.w1 + w * d],
-        delta1,
-        Op::T,
-        x,
-        Op::N,
-        (w, d, rows),
-        true,
-        1,
-    );
+    // dW1 += δ_1ᵀ x, computed as its transpose xᵀ δ_1 (d, w): the same product, measured
+    // three times faster in `gemm` for a narrow d, then added transposed.
+    let mut dw1_t = vec![T::ZERO; d * w];
+    matmul(&mut dw1_t, x, Op::T, delta1, Op::N, (d, w, rows), false, 1);
+    for (j, row) in dw1_t.chunks_exact(w).enumerate() {
+        for (i, &v) in row.iter().enumerate() {
+            grad[o.w1 + i * d + j] += v;
+        }
+    }
     let mut col = vec![T::ZERO; w];
     add_column_sums(&mut col, delta1, w);
     for (j, &v) in col.iter().enumerate() {
