@@ -210,13 +210,13 @@ fn sampler(a: &Args) -> Result<(Vec<f64>, f64)> {
 }
 
 /// Single-precision matrix-multiply rate of this machine through candle (GFLOP/s), on a
-/// [1024, 1024] × [1024, 1024] product, best of 5.
+/// [1024, 1024] × [1024, 1024] product, best of 10.
 fn sgemm_gflops() -> f64 {
     let dev = Device::Cpu;
     let n = 1024;
     let a = Tensor::ones((n, n), DType::F32, &dev).unwrap();
     let mut best = f64::INFINITY;
-    for _ in 0..5 {
+    for _ in 0..10 {
         let t0 = Instant::now();
         let c = a.matmul(&a).unwrap();
         let _ = c.sum_all().unwrap().to_scalar::<f32>().unwrap();
