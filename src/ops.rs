@@ -41,27 +41,36 @@ impl Activation {
 
 /// Rational approximation of tanh for f32 (branch-free, vectorisable).
 #[inline(always)]
-#[allow(clippy::excessive_precision)]
 pub(crate) fn tanh_f32(x: f32) -> f32 {
+    tanh_f32_with::<false>(x)
+}
+
+/// The rational tanh with `FMA` choosing fused multiply-adds for the polynomial steps: only
+/// for loops compiled with FMA instructions enabled (the fused kernel's run-time dispatch);
+/// elsewhere `mul_add` is computed exactly in software, slowly.
+#[inline(always)]
+#[allow(clippy::excessive_precision)]
+pub(crate) fn tanh_f32_with<const FMA: bool>(x: f32) -> f32 {
+    let step = |p: f32, x2: f32, c: f32| if FMA { p.mul_add(x2, c) } else { p * x2 + c };
     let x = x.clamp(-7.905_311, 7.905_311);
     let x2 = x * x;
     let mut p = -2.760_768_5e-16f32;
-    p = p * x2 + 2.000_187_9e-13;
-    p = p * x2 + -8.604_671_5e-11;
-    p = p * x2 + 5.122_297e-8;
-    p = p * x2 + 1.485_722_4e-5;
-    p = p * x2 + 6.372_619_3e-4;
-    p = p * x2 + 4.893_524_6e-3;
+    p = step(p, x2, 2.000_187_9e-13);
+    p = step(p, x2, -8.604_671_5e-11);
+    p = step(p, x2, 5.122_297e-8);
+    p = step(p, x2, 1.485_722_4e-5);
+    p = step(p, x2, 6.372_619_3e-4);
+    p = step(p, x2, 4.893_524_6e-3);
     let mut q = 1.198_258_4e-6f32;
-    q = q * x2 + 1.185_347e-4;
-    q = q * x2 + 2.268_434_7e-3;
-    q = q * x2 + 4.893_525e-3;
+    q = step(q, x2, 1.185_347e-4);
+    q = step(q, x2, 2.268_434_7e-3);
+    q = step(q, x2, 4.893_525e-3);
     p * x / q
 }
 
 /// sigmoid(x) = (1 + tanh(x/2))/2 for f32.
 #[inline(always)]
-pub(crate) fn sigmoid_f32(x: f32) -> f32 {
+fn sigmoid_f32(x: f32) -> f32 {
     0.5 + 0.5 * tanh_f32(0.5 * x)
 }
 
@@ -69,7 +78,7 @@ pub(crate) fn sigmoid_f64(x: f64) -> f64 {
     0.5 + 0.5 * (0.5 * x).tanh()
 }
 
-fn contig<'a, T>(v: &'a [T], l: &Layout, op: &str) -> Result<&'a [T]> {
+pub(crate) fn contig<'a, T>(v: &'a [T], l: &Layout, op: &str) -> Result<&'a [T]> {
     match l.contiguous_offsets() {
         Some((a, b)) => Ok(&v[a..b]),
         None => bail!("{op}: input must be contiguous"),

@@ -20,8 +20,8 @@ pub(crate) enum Op {
 }
 
 /// `c (m×n) = [c +] a' · b'`, where `a'` (m×k) and `b'` (k×n) are `a` and `b` read as `ta`
-/// and `tb` say, all row-major; `accumulate` adds to `c` instead of overwriting it.
-#[allow(clippy::too_many_arguments)]
+/// and `tb` say, all row-major; `accumulate` adds to `c` instead of overwriting it. Runs on
+/// the calling thread: the kernel parallelises over blocks of rows instead.
 pub(crate) fn matmul<T: Real>(
     c: &mut [T],
     a: &[T],
@@ -30,7 +30,6 @@ pub(crate) fn matmul<T: Real>(
     tb: Op,
     (m, n, k): (usize, usize, usize),
     accumulate: bool,
-    threads: usize,
 ) {
     assert!(c.len() >= m * n, "matmul: output too short");
     assert!(a.len() >= m * k, "matmul: left operand too short");
@@ -52,11 +51,6 @@ pub(crate) fn matmul<T: Real>(
     let (b_rs, b_cs) = match tb {
         Op::N => (n as isize, 1),
         Op::T => (1, k as isize),
-    };
-    let par = if threads > 1 {
-        Parallelism::Rayon(threads)
-    } else {
-        Parallelism::None
     };
     // SAFETY: the lengths were checked above: every index the strides reach lies inside the
     // slices (rows < m·k etc.), `c` is borrowed mutably and so cannot alias `a` or `b`, and
@@ -81,7 +75,7 @@ pub(crate) fn matmul<T: Real>(
             false,
             false,
             false,
-            par,
+            Parallelism::None,
         );
     }
 }

@@ -44,6 +44,16 @@ fn form_of<'a>(d: Option<&'a dyn Drift>) -> Option<Option<FusedForm<'a>>> {
     }
 }
 
+/// All the increments `ΔW` as one `(N, batch, d)` buffer.
+fn noise_values<T: real::Real>(noise: &BrownianIncrements) -> candle_core::Result<Vec<T>> {
+    let (batch, d) = noise.shape();
+    let mut out = Vec::with_capacity(noise.n_steps() * batch * d);
+    for dw in noise.dw() {
+        op::append_values(&mut out, dw)?;
+    }
+    Ok(out)
+}
+
 /// Runs `simulate` through the fused kernel, or returns `None` when it does not apply (a
 /// custom drift, learned σ, SRA1, a kept path, another dtype or device).
 pub(crate) fn try_simulate(
@@ -126,10 +136,9 @@ pub(crate) fn try_simulate(
         .collect::<candle_core::Result<_>>()?;
     let theta = Tensor::cat(&flat, 0)?;
     let x0 = x0.contiguous()?;
-    let dw = Tensor::stack(noise.dw(), 0)?.flatten_all()?;
     let noise_data = match dtype {
-        DType::F32 => candle_core::CpuStorage::F32(dw.to_vec1()?),
-        _ => candle_core::CpuStorage::F64(dw.to_vec1()?),
+        DType::F32 => candle_core::CpuStorage::F32(noise_values(noise)?),
+        _ => candle_core::CpuStorage::F64(noise_values(noise)?),
     };
     let spec = PathSpec {
         prior: prior_shape,

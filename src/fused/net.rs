@@ -100,10 +100,10 @@ pub(crate) fn forward<T: Real>(
         let (b1, wt) = (&theta[o.b1..o.b1 + w], &theta[o.wt..o.wt + w]);
         let bias: Vec<T> = b1.iter().zip(wt).map(|(&b, &tw)| b + t * tw).collect();
         fill_rows(h, &bias);
-        matmul(h, x, Op::N, &theta[o.w1..], Op::T, (rows, w, d), true, 1);
+        matmul(h, x, Op::N, &theta[o.w1..], Op::T, (rows, w, d), true);
         if let Some(ctx) = ctx {
             if c > 0 {
-                matmul(h, ctx, Op::N, &theta[o.wc..], Op::T, (rows, w, c), true, 1);
+                matmul(h, ctx, Op::N, &theta[o.wc..], Op::T, (rows, w, c), true);
             }
         }
         activate(net.act, h, tape.da[0]);
@@ -112,21 +112,12 @@ pub(crate) fn forward<T: Real>(
         let (prev, next) = tape.h.split_at_mut(l + 1);
         let (input, h) = (&*prev[l], &mut *next[0]);
         fill_rows(h, &theta[bl..bl + w]);
-        matmul(h, input, Op::N, &theta[wl..], Op::T, (rows, w, w), true, 1);
+        matmul(h, input, Op::N, &theta[wl..], Op::T, (rows, w, w), true);
         activate(net.act, h, tape.da[l + 1]);
     }
     fill_rows(out, &theta[o.bo..o.bo + d]);
     let last = &*tape.h[net.depth - 1];
-    matmul(
-        out,
-        last,
-        Op::N,
-        &theta[o.wo..],
-        Op::T,
-        (rows, d, w),
-        true,
-        1,
-    );
+    matmul(out, last, Op::N, &theta[o.wo..], Op::T, (rows, d, w), true);
 }
 
 /// Backward pass of one step: given the output gradient `g` `(rows, d)`, turns the saved
@@ -154,7 +145,6 @@ fn backward_step<T: Real>(
         Op::N,
         (rows, w, d),
         false,
-        1,
     );
     mul_in_place(tape.da[top], scratch);
     for l in (1..net.depth).rev() {
@@ -167,21 +157,11 @@ fn backward_step<T: Real>(
             Op::N,
             (rows, w, w),
             false,
-            1,
         );
         mul_in_place(tape.da[l - 1], scratch);
     }
     let delta1 = &*tape.da[0];
-    matmul(
-        gx,
-        delta1,
-        Op::N,
-        &theta[o.w1..],
-        Op::N,
-        (rows, d, w),
-        true,
-        1,
-    );
+    matmul(gx, delta1, Op::N, &theta[o.w1..], Op::N, (rows, d, w), true);
     if let Some(gctx) = gctx {
         if c > 0 {
             matmul(
@@ -192,7 +172,6 @@ fn backward_step<T: Real>(
                 Op::N,
                 (rows, c, w),
                 true,
-                1,
             );
         }
     }
@@ -266,7 +245,6 @@ fn step_param_grads<T: Real>(
         Op::N,
         (d, w, rows),
         true,
-        1,
     );
     add_column_sums(&mut grad[o.bo..o.bo + d], g, d);
     for l in (1..net.depth).rev() {
@@ -279,7 +257,6 @@ fn step_param_grads<T: Real>(
             Op::N,
             (w, w, rows),
             true,
-            1,
         );
         add_column_sums(&mut grad[bl..bl + w], &*tape.da[l], w);
     }
@@ -287,7 +264,7 @@ fn step_param_grads<T: Real>(
     // dW1 += δ_1ᵀ x, computed as its transpose xᵀ δ_1 (d, w): the same product, measured
     // three times faster in `gemm` for a narrow d, then added transposed.
     let mut dw1_t = vec![T::ZERO; d * w];
-    matmul(&mut dw1_t, x, Op::T, delta1, Op::N, (d, w, rows), false, 1);
+    matmul(&mut dw1_t, x, Op::T, delta1, Op::N, (d, w, rows), false);
     for (j, row) in dw1_t.chunks_exact(w).enumerate() {
         for (i, &v) in row.iter().enumerate() {
             grad[o.w1 + i * d + j] += v;

@@ -37,17 +37,31 @@ fn blocks(batch: usize) -> Vec<(usize, usize)> {
 }
 
 fn contig<'a, T: Real>(s: &'a CpuStorage, l: &Layout, what: &str) -> Result<&'a [T]> {
-    let v = match T::slice(s) {
-        Some(v) => v,
+    match T::slice(s) {
+        Some(v) => crate::ops::contig(v, l, what),
         None => bail!("fused path: {what} has another dtype than the parameters"),
-    };
-    match l.contiguous_offsets() {
-        Some((a, b)) => Ok(&v[a..b]),
-        None => bail!("fused path: {what} must be contiguous"),
     }
 }
 
+/// Appends the values of the CPU tensor `t` (any layout) to `out`, in one copy.
+pub(crate) fn append_values<T: Real>(out: &mut Vec<T>, t: &Tensor) -> Result<()> {
+    let t = t.contiguous()?;
+    let (s, l) = t.storage_and_layout();
+    let Storage::Cpu(s) = &*s else {
+        bail!("fused path: runs on the CPU only")
+    };
+    out.extend_from_slice(contig::<T>(s, l, "the noise")?);
+    Ok(())
+}
+
 impl PathOp {
+    fn noise<T: Real>(&self) -> Result<&[T]> {
+        match T::slice(&self.noise) {
+            Some(v) => Ok(v),
+            None => bail!("fused path: the noise has another dtype than the parameters"),
+        }
+    }
+
     fn block<'a, T: Real>(
         &self,
         theta: &'a [T],
@@ -76,10 +90,7 @@ impl PathOp {
         ctx: &[T],
         keep: bool,
     ) -> Result<(Vec<T>, Vec<BlockTape<T>>)> {
-        let noise: &[T] = match T::slice(&self.noise) {
-            Some(v) => v,
-            None => bail!("fused path: the noise has another dtype than the parameters"),
-        };
+        let noise = self.noise::<T>()?;
         let d = self.spec.d;
         let mut out = vec![T::ZERO; self.batch * (d + 2)];
         let tapes: Vec<Option<BlockTape<T>>> = out
@@ -145,10 +156,7 @@ impl PathOp {
             None => self.forward(theta, x0, ctx, true)?.1,
         };
         let want_ctx = self.has_ctx && ctx_t.track_op();
-        let noise: &[T] = match T::slice(&self.noise) {
-            Some(v) => v,
-            None => bail!("fused path: the noise has another dtype than the parameters"),
-        };
+        let noise = self.noise::<T>()?;
         let d = self.spec.d;
         let parts: Vec<BlockGrads<T>> = tapes
             .into_par_iter()

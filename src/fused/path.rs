@@ -36,6 +36,12 @@ impl PathSpec {
             .map(|k| T::from_f64(k as f64 * self.h))
             .collect()
     }
+
+    /// σ and 1/σ per dimension.
+    fn sigmas<T: Real>(&self) -> (Vec<T>, Vec<T>) {
+        let of = |f: fn(f64) -> f64| self.sigma.iter().map(|&s| T::from_f64(f(s))).collect();
+        (of(|s| s), of(|s| 1.0 / s))
+    }
 }
 
 /// Saved state of one block for the backward pass.
@@ -103,16 +109,15 @@ pub(crate) fn forward<T: Real>(
         Vec::new()
     };
     let mut e = vec![T::ZERO; if fb.is_some() { rows * d } else { 0 }];
-    let sigma: Vec<T> = spec.sigma.iter().map(|&s| T::from_f64(s)).collect();
-    let inv_sigma: Vec<T> = spec.sigma.iter().map(|&s| T::from_f64(1.0 / s)).collect();
+    let (sigma, inv_sigma) = spec.sigmas::<T>();
+    let times = spec.times::<T>();
     let h = T::from_f64(spec.h);
     let mut x = blk.x0.to_vec();
     let mut b = vec![T::ZERO; rows * d];
     let mut u = vec![T::ZERO; rows * d];
     let mut cost = vec![T::ZERO; rows];
     let mut stoch = vec![T::ZERO; rows];
-    for k in 0..n {
-        let t = T::from_f64(k as f64 * spec.h);
+    for (k, &t) in times.iter().enumerate() {
         let slot = if keep { k } else { 0 };
         if keep {
             xs[k * rows * d..(k + 1) * rows * d].copy_from_slice(&x);
@@ -180,16 +185,7 @@ fn feedback_forward<T: Real>(
     u: &mut [T],
 ) {
     let rows = blk.rows;
-    matmul(
-        e,
-        x,
-        Op::N,
-        &blk.theta[f.a..],
-        Op::N,
-        (rows, d, d),
-        false,
-        1,
-    );
+    matmul(e, x, Op::N, &blk.theta[f.a..], Op::N, (rows, d, d), false);
     let c = &blk.theta[f.c + blk.r0 * d..f.c + (blk.r0 + rows) * d];
     let g = &blk.theta[f.g + k * d..f.g + (k + 1) * d];
     for ((e, u), c) in e
@@ -278,7 +274,7 @@ pub(crate) fn backward<T: Real>(
     let (d, rows, n) = (spec.d, blk.rows, spec.n_steps);
     let offs = |s: &Option<NetShape>| s.as_ref().map(NetShape::offsets);
     let (po, co): (Option<Offsets>, Option<Offsets>) = (offs(&spec.prior), offs(&spec.control));
-    let inv_sigma: Vec<T> = spec.sigma.iter().map(|&s| T::from_f64(1.0 / s)).collect();
+    let (_, inv_sigma) = spec.sigmas::<T>();
     let h = T::from_f64(spec.h);
     let mut lambda = vec![T::ZERO; rows * d];
     let mut g_cost = vec![T::ZERO; rows];
@@ -354,7 +350,6 @@ pub(crate) fn backward<T: Real>(
                 Op::N,
                 (d, d, rows),
                 true,
-                1,
             );
             matmul(
                 &mut lambda,
@@ -364,7 +359,6 @@ pub(crate) fn backward<T: Real>(
                 Op::T,
                 (rows, d, d),
                 true,
-                1,
             );
         }
         let x_k = &tape.xs[span.clone()];
@@ -392,15 +386,14 @@ pub(crate) fn backward<T: Real>(
     if let (Some(s), Some(o), Some(ctx)) = (&spec.control, &co, blk.ctx) {
         if !delta1_sum.is_empty() {
             let (w, c) = (s.w, s.c);
-            super::gemm::matmul(
+            matmul(
                 &mut grad[o.wc..o.wc + w * c],
                 &delta1_sum,
-                super::gemm::Op::T,
+                Op::T,
                 ctx,
-                super::gemm::Op::N,
+                Op::N,
                 (w, c, rows),
                 true,
-                1,
             );
         }
     }

@@ -5,28 +5,13 @@ use std::ops::{Add, AddAssign, Div, Mul, MulAssign, Sub};
 use candle_core::CpuStorage;
 
 use super::pool::Pool;
-use crate::ops::{sigmoid_f64, Activation};
+use crate::ops::{sigmoid_f64, tanh_f32_with, Activation};
 
-/// The rational tanh of [`crate::ops`] for f32 with fused multiply-adds: the loops that call
-/// it run inside `pulp`'s dispatch, where FMA instructions are enabled (on a CPU without them
-/// `mul_add` is computed exactly in software: slower, same values).
+/// The rational tanh of [`crate::ops`] with fused multiply-adds: the loops that call it run
+/// inside `pulp`'s dispatch, where FMA instructions are enabled.
 #[inline(always)]
-#[allow(clippy::excessive_precision)]
 fn tanh_f32(x: f32) -> f32 {
-    let x = x.clamp(-7.905_311, 7.905_311);
-    let x2 = x * x;
-    let mut p = -2.760_768_5e-16f32;
-    p = p.mul_add(x2, 2.000_187_9e-13);
-    p = p.mul_add(x2, -8.604_671_5e-11);
-    p = p.mul_add(x2, 5.122_297e-8);
-    p = p.mul_add(x2, 1.485_722_4e-5);
-    p = p.mul_add(x2, 6.372_619_3e-4);
-    p = p.mul_add(x2, 4.893_524_6e-3);
-    let mut q = 1.198_258_4e-6f32;
-    q = q.mul_add(x2, 1.185_347e-4);
-    q = q.mul_add(x2, 2.268_434_7e-3);
-    q = q.mul_add(x2, 4.893_525e-3);
-    p * x / q
+    tanh_f32_with::<true>(x)
 }
 
 #[inline(always)]

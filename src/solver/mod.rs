@@ -70,7 +70,7 @@ pub struct SolverConfig {
     /// its hand-written backward pass (on by default). It applies with Euler–Maruyama, a
     /// fixed σ and no kept path, on the CPU in f32 or f64; values and gradients equal those of
     /// the generic autodiff path up to rounding. Off, every step goes through candle's
-    /// generic ops (useful to check a result, or to differentiate twice).
+    /// generic ops (useful to check a result).
     pub fused_networks: bool,
 }
 
