@@ -121,6 +121,19 @@ fn compare(case: Case, tol: f64) {
         let r = rel(a, b);
         assert!(r < tol, "{name}: gradients differ, relative {r:e}");
     }
+    // The kernel rounds differently from the generic ops (another order of operations in the
+    // update and the sums), so bit-identical results would mean it did not run at all.
+    let bits = |v: &[f64], g: &[(String, Vec<f64>)]| -> Vec<u64> {
+        v.iter()
+            .chain(g.iter().flat_map(|x| &x.1))
+            .map(|x| x.to_bits())
+            .collect()
+    };
+    assert_ne!(
+        bits(&v_fast, &g_fast),
+        bits(&v_gen, &g_gen),
+        "the fused kernel was not used"
+    );
 }
 
 fn base(dtype: DType) -> Case {
@@ -279,6 +292,15 @@ fn tabular_model_with_score_feedback_matches_generic_autodiff() {
                 "{precision:?} {name}: gradients differ, relative {r:e}"
             );
         }
+        // Other rounding: identical bits would mean the fused kernel did not run.
+        let bits = |g: &[(String, Vec<f64>)]| -> Vec<u64> {
+            g.iter().flat_map(|x| &x.1).map(|x| x.to_bits()).collect()
+        };
+        assert_ne!(
+            bits(&g_fast),
+            bits(&g_gen),
+            "{precision:?}: fused kernel not used"
+        );
     }
 }
 
