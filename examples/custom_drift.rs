@@ -8,21 +8,22 @@ use std::sync::Arc;
 use candle_core::{Tensor, D};
 use neural_sde::ops::linear;
 use neural_sde::{
-    builtin_demo, Activation, Drift, LatentConfig, ParamBuilder, PriorFactory, TabularModel,
+    builtin_demo, Activation, Drift, LatentConfig, Param, ParamBuilder, PriorFactory, TabularModel,
     TrainConfig, Trainer,
 };
 use rand::RngCore;
 
 /// `b(z, t) = W_out h_K`, `h_0 = W_in [z, e(t)]`, `h_{k+1} = h_k + W_k silu(h_k)`, where
-/// `e(t) = (sin(ω_j t), cos(ω_j t))_j` with frequencies ω_j = π·2^j.
+/// `e(t) = (sin(ω_j t), cos(ω_j t))_j` with frequencies ω_j = π·2^j. Parameters are
+/// [`Param`]s from the builder, so evaluation and generation build no autodiff graph.
 struct ResidualDrift {
     dim: usize,
     freqs: Vec<f64>,
-    w_in: Tensor,
-    b_in: Tensor,
-    blocks: Vec<(Tensor, Tensor)>,
-    w_out: Tensor,
-    b_out: Tensor,
+    w_in: Param,
+    b_in: Param,
+    blocks: Vec<(Param, Param)>,
+    w_out: Param,
+    b_out: Param,
 }
 
 impl ResidualDrift {
@@ -86,11 +87,11 @@ impl Drift for ResidualDrift {
         _context: Option<&Tensor>,
     ) -> candle_core::Result<Tensor> {
         let input = Tensor::cat(&[z, &self.embed(t, z.dim(0)?, z)?], D::Minus1)?;
-        let mut h = linear(&input, &self.w_in, Some(&self.b_in))?;
+        let mut h = linear(&input, &self.w_in, Some(self.b_in.tensor()))?;
         for (w, b) in &self.blocks {
-            h = (&h + linear(&Activation::Silu.apply(&h)?, w, Some(b))?)?;
+            h = (&h + linear(&Activation::Silu.apply(&h)?, w, Some(b.tensor()))?)?;
         }
-        linear(&h, &self.w_out, Some(&self.b_out))
+        linear(&h, &self.w_out, Some(self.b_out.tensor()))
     }
 }
 

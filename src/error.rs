@@ -110,11 +110,3 @@ pub(crate) fn check_positive(field: &'static str, value: f64) -> Result<()> {
         Err(Error::config(field, value, "must be a finite number > 0"))
     }
 }
-
-/// Reads a whole file, describing a failure in words for an error message.
-pub(crate) fn read_file(path: &std::path::Path) -> std::result::Result<Vec<u8>, String> {
-    std::fs::read(path).map_err(|e| match e.kind() {
-        std::io::ErrorKind::NotFound => "file not found; check the path".to_string(),
-        _ => format!("cannot read the file ({e}); check its permissions"),
-    })
-}

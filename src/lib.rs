@@ -62,7 +62,7 @@
 //! When every drift is a built-in network ([`TimeMlp`], or the tabular model's control), σ is
 //! fixed and the scheme is Euler–Maruyama, [`simulate`] runs the whole path as one operation
 //! with a hand-written backward pass instead of recording autodiff nodes per layer and step
-//! (see [`SolverConfig::fused_networks`]); values and gradients agree with the generic path
+//! (see [`Kernel`]); values and gradients agree with the generic path
 //! up to rounding. Custom drifts go through candle's generic autodiff.
 //!
 //! ## Threads and stack
@@ -79,57 +79,45 @@
 #![deny(missing_debug_implementations)]
 #![deny(unsafe_code)]
 
-pub mod checkpoint;
-mod data;
-mod demo;
-mod diffusion;
-mod drift;
 mod error;
-mod fused;
-mod latent;
-pub mod linalg;
-mod noise;
-mod objective;
-pub mod ops;
-mod optim;
-mod params;
+mod nn;
 #[cfg(feature = "plot")]
 pub mod plot;
-mod precision;
-mod rng;
+pub mod prelude;
 mod sampler;
-mod solver;
-mod stack;
+mod sde;
 mod tabular;
-mod target;
-mod terminal;
-mod train;
+mod util;
 
-pub use data::{split_rows, Standardizer, Table};
-pub use demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
-pub use diffusion::Diffusion;
-pub use drift::{Drift, FnDrift, FusedForm, MlpConfig, ModuleDrift, TimeMlp};
 pub use error::{Error, Result};
-pub use latent::{
+pub use nn::ops::{self, Activation};
+pub use nn::optim::{AdamW, AdamWConfig, StepStats};
+pub use nn::params::{frozen, is_frozen, sorted_vars, Param, ParamBuilder};
+pub use sampler::ratio::LogDensityRatio;
+pub use sampler::target::{FnDensity, GaussianDensity, GaussianMixture, LogDensity};
+pub use sampler::{estimate_log_z, FollmerDrift, LogZEstimate, Sampler, SamplerConfig};
+pub use sde::diffusion::Diffusion;
+pub use sde::drift::{Drift, FnDrift, MlpConfig, ModuleDrift, TimeMlp};
+pub use sde::noise::BrownianIncrements;
+pub use sde::objective::{FreeEnergy, FreeEnergyValues};
+pub use sde::solver::{simulate, Kernel, Paths, Scheme, Sde, SolverConfig};
+pub use sde::terminal::{BernoulliNll, GaussianNll, TerminalCost};
+pub use tabular::demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
+pub use tabular::fitted::{Evaluation, TabularModel};
+pub use tabular::model::{
     Decoder, DecoderConfig, DecoderKind, LatentConfig, LatentModel, PathTerms, PriorFactory,
 };
-pub use noise::BrownianIncrements;
-pub use objective::{FreeEnergy, FreeEnergyValues};
-pub use ops::Activation;
-pub use optim::{AdamW, AdamWConfig, StepStats};
-pub use params::{sorted_vars, ParamBuilder};
-pub use precision::Precision;
-pub use rng::{generator, standard_normals, Generator};
-pub use sampler::{estimate_log_z, FollmerDrift, LogZEstimate, Sampler, SamplerConfig};
-pub use solver::{simulate, Paths, Scheme, Sde, SolverConfig};
-pub use stack::{run_deep, DEEP_STACK_BYTES};
-pub use tabular::{Evaluation, TabularModel};
-pub use target::{FnDensity, GaussianDensity, GaussianMixture, LogDensity};
-pub use terminal::{BernoulliNll, GaussianNll, LogDensityRatio, TerminalCost};
-pub use train::{
+pub use tabular::scaler::Standardizer;
+pub use tabular::split::split_rows;
+pub use tabular::summary::{inspect_checkpoint, CheckpointSummary};
+pub use tabular::table::Table;
+pub use tabular::train::{
     EpochRecord, History, Observer, StepInfo, Termination, TrainConfig, TrainReport, TrainState,
     Trainer,
 };
+pub use util::precision::Precision;
+pub use util::rng::{generator, standard_normals, Generator};
+pub use util::stack::{run_deep, DEEP_STACK_BYTES};
 
 /// The README's code blocks, compiled and run as doctests.
 #[cfg(doctest)]

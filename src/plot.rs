@@ -7,16 +7,16 @@ use std::path::Path;
 
 use plotters::prelude::*;
 
-use crate::data::Table;
 use crate::error::{Error, Result};
-use crate::train::History;
+use crate::tabular::table::Table;
+use crate::tabular::train::History;
 
 fn plot_err(e: impl std::fmt::Display) -> Error {
     Error::Plot(e.to_string())
 }
 
 fn finish(svg: String, path: &Path) -> Result<()> {
-    crate::checkpoint::write_atomic(path, svg.as_bytes())
+    crate::util::fs::write_atomic(path, svg.as_bytes())
 }
 
 fn range(v: impl Iterator<Item = f64>) -> (f64, f64) {

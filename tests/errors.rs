@@ -228,3 +228,51 @@ fn bad_target_and_terminal_inputs_are_named() {
     let e = nll.cost(&x, None).unwrap_err().to_string();
     assert!(e.contains("needs an observation"), "{e}");
 }
+
+/// Asking for the fused kernel where it cannot run is an error that says why; `Auto` falls
+/// back to the generic path and `Generic` never fuses.
+#[test]
+fn fused_kernel_where_it_cannot_run_says_why() {
+    let sigma = Diffusion::constant(1.0).unwrap();
+    let custom = FnDrift::new(2, |x, _t, _c| x.affine(-1.0, 0.0));
+    let x0 = Tensor::zeros((4, 2), DType::F32, &dev()).unwrap();
+    let run = |kernel: Kernel, scheme: Scheme, drift: &dyn Drift| {
+        let cfg = SolverConfig {
+            n_steps: 3,
+            kernel,
+            scheme,
+            ..Default::default()
+        };
+        let noise = cfg
+            .sample_noise(&mut generator(0, 0), 4, 2, DType::F32, &dev())
+            .unwrap();
+        simulate(
+            &Sde::new(&sigma).with_control(drift),
+            &cfg,
+            &x0,
+            &noise,
+            None,
+        )
+    };
+    let e = run(Kernel::Fused, Scheme::EulerMaruyama, &custom).unwrap_err();
+    assert!(
+        matches!(
+            e,
+            Error::InvalidConfig {
+                field: "kernel",
+                ..
+            }
+        ),
+        "{e}"
+    );
+    assert!(e.to_string().contains("built-in network"), "{e}");
+    assert!(run(Kernel::Auto, Scheme::EulerMaruyama, &custom).is_ok());
+    assert!(run(Kernel::Generic, Scheme::EulerMaruyama, &custom).is_ok());
+
+    let vm = candle_nn::VarMap::new();
+    let pb = ParamBuilder::new(&vm, DType::F32, &dev());
+    let net = TimeMlp::new(&MlpConfig::default(), 2, 0, &pb, &mut generator(0, 1)).unwrap();
+    let e = run(Kernel::Fused, Scheme::Sra1, &net).unwrap_err();
+    assert!(e.to_string().contains("Euler–Maruyama"), "{e}");
+    assert!(run(Kernel::Fused, Scheme::EulerMaruyama, &net).is_ok());
+}

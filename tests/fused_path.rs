@@ -56,7 +56,11 @@ fn run(case: &Case, fused: bool) -> (Vec<f64>, Vec<(String, Vec<f64>)>) {
     let cfg = SolverConfig {
         n_steps: case.n_steps,
         t_end: 0.8,
-        fused_networks: fused,
+        kernel: if fused {
+            Kernel::Fused
+        } else {
+            Kernel::Generic
+        },
         ..Default::default()
     };
     let noise = cfg
@@ -218,7 +222,11 @@ fn latent_model_run(precision: Precision, fused: bool) -> (f64, Vec<(String, Vec
         },
         solver: SolverConfig {
             n_steps: 10,
-            fused_networks: fused,
+            kernel: if fused {
+                Kernel::Fused
+            } else {
+                Kernel::Generic
+            },
             ..Default::default()
         },
         sigma: 0.9,

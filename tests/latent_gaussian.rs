@@ -1,6 +1,8 @@
 //! Likelihood estimates of a linear-Gaussian latent model against its closed form.
 #![allow(clippy::needless_range_loop)] // index loops mirror the textbook formulas
 mod common;
+#[path = "support/dense.rs"]
+mod linalg;
 
 use candle_core::DType;
 use common::*;

@@ -110,7 +110,7 @@ fn tensor_solver_matches_scalar_loop() {
             scheme,
             t_end: 1.5,
             keep_path: true,
-            fused_networks: false,
+            kernel: Kernel::Generic,
         };
         let noise = cfg
             .sample_noise(&mut generator(9, 0), batch, d, DType::F64, &dev)
@@ -182,7 +182,7 @@ fn tensor_solver_matches_scalar_loop() {
             // The fused kernel for built-in networks against the same checked values.
             let fused_cfg = SolverConfig {
                 keep_path: false,
-                fused_networks: true,
+                kernel: Kernel::Fused,
                 ..cfg.clone()
             };
             let q = simulate(&sde, &fused_cfg, &x0, &noise, Some(&ctx)).unwrap();

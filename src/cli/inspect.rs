@@ -13,13 +13,11 @@ pub struct InspectArgs {
 }
 
 pub fn run(a: InspectArgs) -> Result<(), Failure> {
-    let info = neural_sde::checkpoint::inspect(&a.model)?;
+    let info = neural_sde::inspect_checkpoint(&a.model)?;
     println!("file           {}", a.model.display());
     println!(
         "written by     neural-sde {} (format {} v{})",
-        info.crate_version,
-        neural_sde::checkpoint::FORMAT,
-        neural_sde::checkpoint::FORMAT_VERSION
+        info.crate_version, info.format, info.format_version
     );
     println!("columns        {}", info.columns.len());
     println!("  {:<24} {:>14} {:>14}", "name", "mean", "scale");

@@ -4,10 +4,10 @@ use std::sync::Arc;
 
 use candle_core::{DType, Tensor, Var};
 
-use crate::drift::Drift;
 use crate::error::{Error, Result};
-use crate::rng::{generator, standard_normals};
-use crate::target::LogDensity;
+use crate::sampler::target::LogDensity;
+use crate::sde::drift::Drift;
+use crate::util::rng::{generator, standard_normals};
 
 /// The Föllmer drift `u*(x, t) = ∇ log Q_{1−t} f(x)`, `f = π̃/γ`, estimated by Monte Carlo.
 ///

@@ -10,6 +10,8 @@
 //! reference Brownian motion.
 
 mod follmer;
+pub(crate) mod ratio;
+pub(crate) mod target;
 
 pub use follmer::FollmerDrift;
 
@@ -19,18 +21,19 @@ use candle_core::{DType, Device, Tensor};
 use candle_nn::VarMap;
 use serde::{Deserialize, Serialize};
 
-use crate::diffusion::Diffusion;
-use crate::drift::{Drift, MlpConfig, TimeMlp};
 use crate::error::{check_positive, Error, Result};
-use crate::objective::{FreeEnergy, FreeEnergyValues};
-use crate::optim::{AdamW, AdamWConfig};
-use crate::params::ParamBuilder;
-use crate::precision::Precision;
-use crate::rng::{generator, streams, Generator};
-use crate::solver::{simulate, Scheme, Sde, SolverConfig};
-use crate::stack::run_deep;
-use crate::target::LogDensity;
-use crate::terminal::{LogDensityRatio, TerminalCost};
+use crate::nn::optim::{AdamW, AdamWConfig};
+use crate::nn::params::{frozen, ParamBuilder};
+use crate::sampler::ratio::LogDensityRatio;
+use crate::sampler::target::LogDensity;
+use crate::sde::diffusion::Diffusion;
+use crate::sde::drift::{Drift, MlpConfig, TimeMlp};
+use crate::sde::objective::{FreeEnergy, FreeEnergyValues};
+use crate::sde::solver::{simulate, Scheme, Sde, SolverConfig};
+use crate::sde::terminal::TerminalCost;
+use crate::util::precision::Precision;
+use crate::util::rng::{generator, streams, Generator};
+use crate::util::stack::run_deep;
 
 /// Settings of a [`Sampler`].
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -323,17 +326,20 @@ pub fn estimate_log_z(
     while done < paths {
         let n = (paths - done).min(1024);
         let noise = solver.sample_noise(&mut rng, n, d, dtype, &dev)?;
-        let (lw, obj, c, x) = run_deep(|| -> Result<_> {
-            let x0 = Tensor::zeros((n, d), dtype, &dev)?;
-            let p = simulate(sde, solver, &x0, &noise, None)?;
-            let g = terminal.cost(&p.end, None)?;
-            let to =
-                |t: &Tensor| -> Result<Vec<f64>> { Ok(t.to_dtype(DType::F64)?.to_vec1::<f64>()?) };
-            let lw = to(&(&p.log_weight - &g)?)?;
-            let obj = to(&(&p.control_cost + &g)?)?;
-            let c = to(&p.control_cost)?;
-            let x = p.end.to_dtype(DType::F64)?.to_vec2::<f64>()?;
-            Ok((lw, obj, c, x))
+        let (lw, obj, c, x) = run_deep(|| {
+            frozen(|| -> Result<_> {
+                let x0 = Tensor::zeros((n, d), dtype, &dev)?;
+                let p = simulate(sde, solver, &x0, &noise, None)?;
+                let g = terminal.cost(&p.end, None)?;
+                let to = |t: &Tensor| -> Result<Vec<f64>> {
+                    Ok(t.to_dtype(DType::F64)?.to_vec1::<f64>()?)
+                };
+                let lw = to(&(&p.log_weight - &g)?)?;
+                let obj = to(&(&p.control_cost + &g)?)?;
+                let c = to(&p.control_cost)?;
+                let x = p.end.to_dtype(DType::F64)?.to_vec2::<f64>()?;
+                Ok((lw, obj, c, x))
+            })
         })??;
         log_w.extend(lw);
         objective.extend(obj);

@@ -1,7 +1,10 @@
 //! Data sets from `linfa-datasets` and the full-covariance Gaussian baseline.
 #![allow(dead_code, clippy::needless_range_loop)]
 
-use neural_sde::{linalg, Table};
+use neural_sde::Table;
+
+#[path = "dense.rs"]
+mod linalg;
 
 /// iris (Fisher 1936, Ann. Eugenics 7:179–188), 150 × 4, as shipped by linfa-datasets.
 pub fn iris() -> Table {

@@ -1,0 +1,9 @@
+//! Neural-network building blocks on top of candle: seeded parameters (with a frozen mode
+//! for inference), activations and fast custom operations with their backward passes, the
+//! AdamW optimiser with its schedule, and the checkpoint file format (named tensors and a
+//! versioned JSON header).
+
+pub(crate) mod checkpoint;
+pub mod ops;
+pub(crate) mod optim;
+pub(crate) mod params;

@@ -1,0 +1,149 @@
+//! Brownian increments on a fixed time grid, drawn from the library's seeded generator.
+
+use candle_core::{DType, Device, Tensor};
+use rand::RngCore;
+
+use crate::error::{Error, Result};
+use crate::util::rng::standard_normals;
+
+/// The Brownian increments that drive one batch of paths on a grid of `n_steps` steps.
+///
+/// `dw[k]` holds `ΔW_k = W_{t_{k+1}} − W_{t_k} ~ N(0, h I)`, shape `(batch, d)`. Schemes of
+/// strong order 1.5 also need the time integral `ΔZ_k = ∫_{t_k}^{t_{k+1}} (W_s − W_{t_k}) ds`,
+/// drawn jointly as `ΔW = √h ξ₁`, `ΔZ = ½ h^{3/2} (ξ₁ + ξ₂/√3)` with independent standard
+/// normals ξ₁, ξ₂ (Kloeden & Platen 1992, *Numerical Solution of Stochastic Differential
+/// Equations*, §10.4). All ξ₁ are drawn before any ξ₂, so the same seed gives the same `ΔW`
+/// whether or not `ΔZ` is requested.
+///
+/// Keep and pass the same value to several simulations to use common random numbers.
+///
+/// # Example
+/// ```
+/// use candle_core::{DType, Device};
+/// use neural_sde::{generator, BrownianIncrements};
+/// let mut rng = generator(7, 0);
+/// let noise = BrownianIncrements::sample(&mut rng, 4, 2, 10, 1.0, false, DType::F64, &Device::Cpu)?;
+/// assert_eq!(noise.n_steps(), 10);
+/// assert_eq!(noise.dw()[0].dims(), &[4, 2]);
+/// # Ok::<(), neural_sde::Error>(())
+/// ```
+#[derive(Debug, Clone)]
+pub struct BrownianIncrements {
+    dw: Vec<Tensor>,
+    dz: Option<Vec<Tensor>>,
+    step: f64,
+}
+
+impl BrownianIncrements {
+    /// Draws increments for `batch` paths in dimension `dim` over `n_steps` steps of size
+    /// `t_end / n_steps`; with `with_area`, also the integrals `ΔZ`.
+    ///
+    /// # Errors
+    /// [`Error::InvalidConfig`] for zero sizes or a non-positive horizon.
+    #[allow(clippy::too_many_arguments)]
+    pub fn sample(
+        rng: &mut dyn RngCore,
+        batch: usize,
+        dim: usize,
+        n_steps: usize,
+        t_end: f64,
+        with_area: bool,
+        dtype: DType,
+        dev: &Device,
+    ) -> Result<Self> {
+        if batch == 0 {
+            return Err(Error::config("batch", batch, "simulate at least 1 path"));
+        }
+        if dim == 0 {
+            return Err(Error::config(
+                "dim",
+                dim,
+                "the state needs at least 1 dimension",
+            ));
+        }
+        if n_steps == 0 {
+            return Err(Error::config(
+                "n_steps",
+                n_steps,
+                "use at least 1 solver step",
+            ));
+        }
+        crate::error::check_positive("t_end", t_end)?;
+        let h = t_end / n_steps as f64;
+        let n = batch * dim;
+        let xi1: Vec<Vec<f64>> = (0..n_steps).map(|_| standard_normals(rng, n)).collect();
+        let sh = h.sqrt();
+        let mut dw = Vec::with_capacity(n_steps);
+        for xi in &xi1 {
+            let v: Vec<f64> = xi.iter().map(|z| sh * z).collect();
+            dw.push(Tensor::from_vec(v, (batch, dim), dev)?.to_dtype(dtype)?);
+        }
+        let dz = if with_area {
+            let c = 0.5 * h * sh;
+            let r3 = 1.0 / 3f64.sqrt();
+            let mut dz = Vec::with_capacity(n_steps);
+            for xi in &xi1 {
+                let xi2 = standard_normals(rng, n);
+                let v: Vec<f64> = xi.iter().zip(&xi2).map(|(a, b)| c * (a + b * r3)).collect();
+                dz.push(Tensor::from_vec(v, (batch, dim), dev)?.to_dtype(dtype)?);
+            }
+            Some(dz)
+        } else {
+            None
+        };
+        Ok(Self { dw, dz, step: h })
+    }
+
+    /// Increments supplied by the caller (for instance aggregated from a finer grid).
+    ///
+    /// # Errors
+    /// [`Error::Shape`] if the tensors do not all share one `(batch, d)` shape or `dz` has
+    /// another length; [`Error::InvalidConfig`] for an empty list or bad step.
+    pub fn from_tensors(dw: Vec<Tensor>, dz: Option<Vec<Tensor>>, step: f64) -> Result<Self> {
+        crate::error::check_positive("step", step)?;
+        let first = dw
+            .first()
+            .ok_or_else(|| Error::config("n_steps", 0, "give at least one increment"))?;
+        let shape = first.dims().to_vec();
+        if shape.len() != 2 {
+            return Err(Error::shape("Brownian increment", "(batch, d)", &shape));
+        }
+        for t in dw.iter().chain(dz.iter().flatten()) {
+            if t.dims() != shape.as_slice() {
+                return Err(Error::shape("Brownian increment", &shape, t.dims()));
+            }
+        }
+        if let Some(z) = &dz {
+            if z.len() != dw.len() {
+                return Err(Error::shape("number of ΔZ increments", dw.len(), z.len()));
+            }
+        }
+        Ok(Self { dw, dz, step })
+    }
+
+    /// Number of steps.
+    pub fn n_steps(&self) -> usize {
+        self.dw.len()
+    }
+
+    /// The step size `h`.
+    pub fn step(&self) -> f64 {
+        self.step
+    }
+
+    /// `(batch, d)`.
+    pub fn shape(&self) -> (usize, usize) {
+        let d = self.dw[0].dims();
+        (d[0], d[1])
+    }
+
+    /// The increments `ΔW_k`.
+    pub fn dw(&self) -> &[Tensor] {
+        &self.dw
+    }
+
+    /// The integrals `ΔZ_k`, when drawn.
+    pub fn dz(&self) -> Option<&[Tensor]> {
+        self.dz.as_deref()
+    }
+}

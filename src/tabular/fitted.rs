@@ -1,0 +1,323 @@
+//! A fitted latent-diffusion model of a table: evaluation and generation in the data's units.
+
+use std::path::Path;
+
+use std::collections::HashMap;
+
+use candle_core::Tensor;
+use serde::{Deserialize, Serialize};
+
+use crate::error::{Error, Result};
+use crate::nn::params::sorted_vars;
+use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory};
+use crate::tabular::scaler::Standardizer;
+use crate::tabular::table::Table;
+use crate::tabular::train::history::History;
+use crate::util::rng::{generator, streams};
+
+/// Log-likelihood figures of a model on some rows, in nats and in the data's own units
+/// (the standardisation Jacobian `−Σ_j log scale_j` included).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Evaluation {
+    /// Number of rows.
+    pub rows: usize,
+    /// Number of columns `D`.
+    pub dims: usize,
+    /// Posterior paths per row `K`.
+    pub paths: usize,
+    /// Mean ELBO per row.
+    pub elbo_per_row: f64,
+    /// Mean ELBO per row divided by `D`.
+    pub elbo_per_dim: f64,
+    /// Mean importance-weighted log-likelihood per row, `log (1/K) Σ_k w_k`: a lower bound on
+    /// `log p(y)` in expectation that tightens as `K` grows (Burda, Grosse & Salakhutdinov,
+    /// *Importance Weighted Autoencoders*, ICLR 2016, Theorem 1).
+    pub loglik_per_row: f64,
+    /// Mean importance-weighted log-likelihood per row divided by `D`.
+    pub loglik_per_dim: f64,
+    /// Standard error (over rows) of `loglik_per_row`.
+    pub loglik_se: f64,
+    /// ELBO of each row.
+    pub elbo_rows: Vec<f64>,
+    /// Importance-weighted log-likelihood of each row.
+    pub loglik_rows: Vec<f64>,
+}
+
+/// A latent-diffusion model of a table, with its standardisation and column names.
+///
+/// Produced by [`crate::Trainer`]; saved and loaded as one `.safetensors` file.
+#[derive(Debug)]
+pub struct TabularModel {
+    pub(crate) model: LatentModel,
+    pub(crate) scaler: Standardizer,
+    pub(crate) columns: Vec<String>,
+    pub(crate) history: History,
+}
+
+impl TabularModel {
+    /// The latent model (standardised units).
+    pub fn latent(&self) -> &LatentModel {
+        &self.model
+    }
+
+    /// The standardisation fitted on the training rows.
+    pub fn scaler(&self) -> &Standardizer {
+        &self.scaler
+    }
+
+    /// Column names, in order.
+    pub fn columns(&self) -> &[String] {
+        &self.columns
+    }
+
+    /// Training history (empty for a model that was never trained).
+    pub fn history(&self) -> &History {
+        &self.history
+    }
+
+    /// Saves the model alone (no training state), atomically.
+    ///
+    /// # Errors
+    /// [`Error::Io`] or [`Error::Checkpoint`] if it cannot be written.
+    pub fn save(&self, path: impl AsRef<Path>) -> Result<()> {
+        crate::nn::checkpoint::write(path.as_ref(), FORMAT, self.tensors()?, &self.header())
+    }
+
+    /// Loads a model saved by [`crate::Trainer::save`] or [`TabularModel::save`].
+    ///
+    /// # Errors
+    /// [`Error::Checkpoint`] naming what is wrong with the file.
+    pub fn load(path: impl AsRef<Path>) -> Result<Self> {
+        Ok(Self::read(path.as_ref(), None)?.0)
+    }
+
+    /// Loads a model whose prior drift was built by `prior` (see
+    /// [`crate::Trainer::with_prior`]); pass the same builder.
+    ///
+    /// # Errors
+    /// [`Error::Checkpoint`] naming what is wrong with the file.
+    pub fn load_with_prior(
+        path: impl AsRef<Path>,
+        prior: &crate::tabular::model::PriorFactory,
+    ) -> Result<Self> {
+        Ok(Self::read(path.as_ref(), Some(prior))?.0)
+    }
+
+    /// The table's columns in the model's order.
+    fn matching(&self, table: &Table) -> Result<Table> {
+        if table.columns() == self.columns.as_slice() {
+            return Ok(table.clone());
+        }
+        table.select(&self.columns).map_err(|_| Error::Data {
+            path: table.source().to_path_buf(),
+            reason: format!(
+                "the model was trained on columns [{}] but the table has [{}]; pass a table with those columns",
+                self.columns.join(", "),
+                table.columns().join(", ")
+            ),
+        })
+    }
+
+    /// ELBO and importance-weighted log-likelihood from `paths` posterior paths per row,
+    /// streamed in chunks (memory does not grow with the number of rows).
+    ///
+    /// # Errors
+    /// [`Error::Data`] if the table lacks the model's columns; [`Error::InvalidConfig`] for
+    /// `paths == 0`.
+    pub fn evaluate(&self, table: &Table, paths: usize, seed: u64) -> Result<Evaluation> {
+        if paths == 0 {
+            return Err(Error::config(
+                "paths",
+                0,
+                "use at least 1 posterior path per row",
+            ));
+        }
+        let table = self.matching(table)?;
+        let z = self.scaler.transform(&table);
+        let d = self.columns.len();
+        let mut rng = generator(seed, streams::EVAL);
+        let chunk_rows = (8192 / paths).max(1);
+        let (mut elbo_rows, mut loglik_rows) = (Vec::new(), Vec::new());
+        let jac = self.scaler.log_jacobian();
+        for chunk in z.chunks(chunk_rows * d) {
+            let r = chunk.len() / d;
+            let terms = self.model.posterior_terms(chunk, paths, &mut rng)?;
+            for i in 0..r {
+                let lw = &terms.log_weight[i * paths..(i + 1) * paths];
+                let el = &terms.elbo[i * paths..(i + 1) * paths];
+                let max = lw.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+                let lse = max + lw.iter().map(|l| (l - max).exp()).sum::<f64>().ln();
+                loglik_rows.push(lse - (paths as f64).ln() + jac);
+                elbo_rows.push(el.iter().sum::<f64>() / paths as f64 + jac);
+            }
+        }
+        let n = elbo_rows.len() as f64;
+        let elbo = elbo_rows.iter().sum::<f64>() / n;
+        let ll = loglik_rows.iter().sum::<f64>() / n;
+        if !ll.is_finite() || !elbo.is_finite() {
+            return Err(Error::NonFinite {
+                what: "evaluation".into(),
+                detail: format!("ELBO {elbo}, log-likelihood {ll}; the rows may lie far outside the training data"),
+            });
+        }
+        let var = if n > 1.0 {
+            loglik_rows.iter().map(|v| (v - ll).powi(2)).sum::<f64>() / (n - 1.0)
+        } else {
+            0.0
+        };
+        Ok(Evaluation {
+            rows: elbo_rows.len(),
+            dims: d,
+            paths,
+            elbo_per_row: elbo,
+            elbo_per_dim: elbo / d as f64,
+            loglik_per_row: ll,
+            loglik_per_dim: ll / d as f64,
+            loglik_se: (var / n).sqrt(),
+            elbo_rows,
+            loglik_rows,
+        })
+    }
+
+    /// Generates `rows` new rows in the data's units (seeded, in batches, no autodiff graph).
+    ///
+    /// # Errors
+    /// [`Error::InvalidConfig`] for `rows == 0`.
+    pub fn generate(&self, rows: usize, seed: u64) -> Result<Table> {
+        if rows == 0 {
+            return Err(Error::config("rows", 0, "generate at least 1 row"));
+        }
+        let mut rng = generator(seed, streams::EVAL);
+        let mut out = Vec::with_capacity(rows);
+        let d = self.columns.len();
+        let mut left = rows;
+        while left > 0 {
+            let n = left.min(4096);
+            let z = self.model.generate(n, &mut rng)?;
+            let y = self.scaler.inverse(&z);
+            out.extend(y.chunks_exact(d).map(<[f64]>::to_vec));
+            left -= n;
+        }
+        Table::new(self.columns.clone(), out)
+    }
+}
+
+/// Value of the `format` entry of a tabular model's checkpoint.
+pub(crate) const FORMAT: &str = "neural-sde-model";
+
+/// The model's part of a checkpoint header (the trainer adds its own fields beside these).
+#[derive(Serialize, Deserialize)]
+pub(crate) struct ModelHeader {
+    pub model_config: LatentConfig,
+    pub data_dim: usize,
+    pub columns: Vec<String>,
+    pub scaler: Standardizer,
+    pub history: History,
+}
+
+impl TabularModel {
+    /// The model's header fields.
+    pub(crate) fn header(&self) -> ModelHeader {
+        ModelHeader {
+            model_config: self.model.config().clone(),
+            data_dim: self.model.data_dim(),
+            columns: self.columns.clone(),
+            scaler: self.scaler.clone(),
+            history: self.history.clone(),
+        }
+    }
+
+    /// The model's weights, by name.
+    pub(crate) fn tensors(&self) -> Result<Vec<(String, Tensor)>> {
+        Ok(sorted_vars(self.model.varmap())?
+            .into_iter()
+            .map(|(n, v)| (n, v.as_tensor().clone()))
+            .collect())
+    }
+
+    /// Reads a checkpoint: the model with its weights, and every tensor of the file (the
+    /// trainer takes its own from them). Every tensor must belong to the model, as a weight,
+    /// an optimiser moment (`optim.m.`, `optim.v.`) or a best weight (`best.`).
+    pub(crate) fn read(
+        path: &Path,
+        factory: Option<&PriorFactory>,
+    ) -> Result<(Self, HashMap<String, Tensor>)> {
+        let bad = |reason: String| Error::Checkpoint {
+            path: path.to_path_buf(),
+            reason,
+        };
+        let (bytes, _, header): (_, _, ModelHeader) =
+            crate::nn::checkpoint::read_header(path, FORMAT)?;
+        header.check().map_err(bad)?;
+        match (header.model_config.custom_prior, factory.is_some()) {
+            (true, false) => {
+                return Err(bad(
+                    "this model uses a custom prior drift; load it from Rust with `TabularModel::load_with_prior` and the same builder".into(),
+                ))
+            }
+            (false, true) => {
+                return Err(bad("this model uses the built-in prior drift; load it with `TabularModel::load`".into()))
+            }
+            _ => {}
+        }
+        let file = crate::nn::checkpoint::read_tensors(
+            path,
+            &bytes,
+            header.model_config.precision.dtype(),
+        )?;
+        // Rebuild the model, then copy every weight in after checking its shape.
+        let model = LatentModel::build(&header.model_config, header.data_dim, 0, factory)
+            .map_err(|e| bad(format!("the stored configuration is invalid ({e})")))?;
+        let vars = sorted_vars(model.varmap())?;
+        for (name, var) in &vars {
+            let t = file
+                .get(name)
+                .ok_or_else(|| bad(format!("tensor {name} is missing")))?;
+            if t.dims() != var.dims() {
+                return Err(bad(format!(
+                    "tensor {name} has shape {:?}, expected {:?}",
+                    t.dims(),
+                    var.dims()
+                )));
+            }
+            var.set(t)?;
+        }
+        for name in file.keys() {
+            let base = name
+                .strip_prefix("optim.m.")
+                .or_else(|| name.strip_prefix("optim.v."))
+                .or_else(|| name.strip_prefix("best."))
+                .unwrap_or(name);
+            if !vars.iter().any(|(n, _)| n == base) {
+                return Err(bad(format!(
+                    "unexpected tensor {name}: it does not belong to this model"
+                )));
+            }
+        }
+        let model = TabularModel {
+            model,
+            scaler: header.scaler,
+            columns: header.columns,
+            history: header.history,
+        };
+        Ok((model, file))
+    }
+}
+
+impl ModelHeader {
+    /// Checks that the header's parts agree with each other.
+    pub(crate) fn check(&self) -> std::result::Result<(), String> {
+        if self.columns.len() != self.data_dim
+            || self.scaler.mean.len() != self.data_dim
+            || self.scaler.scale.len() != self.data_dim
+        {
+            return Err(format!(
+                "the header is inconsistent: {} columns, {} scaler entries, data dimension {}",
+                self.columns.len(),
+                self.scaler.mean.len(),
+                self.data_dim
+            ));
+        }
+        Ok(())
+    }
+}

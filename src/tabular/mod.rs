@@ -1,0 +1,13 @@
+//! The tabular application: tables (CSV, standardisation, seeded splits, the demo table),
+//! the latent-diffusion model, its trainer, the fitted model and its checkpoint contents.
+
+#[cfg(feature = "csv")]
+mod csv_io;
+pub(crate) mod demo;
+pub(crate) mod fitted;
+pub(crate) mod model;
+pub(crate) mod scaler;
+pub(crate) mod split;
+pub(crate) mod summary;
+pub(crate) mod table;
+pub(crate) mod train;

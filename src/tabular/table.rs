@@ -1,0 +1,230 @@
+//! The checked numeric table.
+
+use std::path::{Path, PathBuf};
+
+use crate::error::{Error, Result};
+
+/// A numeric table with named columns, stored row-major in f64.
+///
+/// Every constructor checks that names are unique and non-empty, rows have one value per
+/// column, and every value is finite.
+///
+/// # Example
+/// ```
+/// use neural_sde::Table;
+/// let t = Table::new(vec!["a".into(), "b".into()], vec![vec![1.0, 2.0], vec![3.0, 4.5]])?;
+/// assert_eq!((t.n_rows(), t.n_cols()), (2, 2));
+/// assert_eq!(t.row(1), &[3.0, 4.5]);
+/// # Ok::<(), neural_sde::Error>(())
+/// ```
+#[derive(Debug, Clone, PartialEq)]
+pub struct Table {
+    columns: Vec<String>,
+    values: Vec<f64>,
+    n_rows: usize,
+    source: PathBuf,
+}
+
+impl Table {
+    /// A table from column names and rows.
+    ///
+    /// # Errors
+    /// [`Error::Data`] for no columns, duplicate or empty names, ragged rows, no rows, or a
+    /// non-finite value (naming row and column).
+    pub fn new(columns: Vec<String>, rows: Vec<Vec<f64>>) -> Result<Self> {
+        Self::from_parts(columns, rows, PathBuf::from("<in-memory table>"))
+    }
+
+    pub(crate) fn from_parts(
+        columns: Vec<String>,
+        rows: Vec<Vec<f64>>,
+        source: PathBuf,
+    ) -> Result<Self> {
+        let err = |reason: String| Error::Data {
+            path: source.clone(),
+            reason,
+        };
+        check_names(&columns).map_err(err)?;
+        if rows.is_empty() {
+            return Err(err(
+                "the table has a header but no data rows; add rows".into()
+            ));
+        }
+        let mut values = Vec::with_capacity(rows.len() * columns.len());
+        for (i, row) in rows.iter().enumerate() {
+            if row.len() != columns.len() {
+                return Err(err(format!(
+                    "row {} has {} values but there are {} columns; make every row the same length",
+                    i + 1,
+                    row.len(),
+                    columns.len()
+                )));
+            }
+            for (j, v) in row.iter().enumerate() {
+                if !v.is_finite() {
+                    return Err(err(format!(
+                        "row {}, column '{}': value {v} is not finite; remove or impute it",
+                        i + 1,
+                        columns[j]
+                    )));
+                }
+            }
+            values.extend_from_slice(row);
+        }
+        Ok(Self {
+            columns,
+            values,
+            n_rows: rows.len(),
+            source,
+        })
+    }
+
+    /// Writes the table as CSV with a header, atomically (temporary file, then rename).
+    ///
+    /// # Errors
+    /// [`Error::Io`] if the file cannot be written.
+    pub fn write_csv(&self, path: impl AsRef<Path>) -> Result<()> {
+        let mut out = String::with_capacity(self.values.len() * 12);
+        out.push_str(
+            &self
+                .columns
+                .iter()
+                .map(|c| quote(c))
+                .collect::<Vec<_>>()
+                .join(","),
+        );
+        out.push('\n');
+        for i in 0..self.n_rows {
+            let row: Vec<String> = self.row(i).iter().map(|v| format!("{v}")).collect();
+            out.push_str(&row.join(","));
+            out.push('\n');
+        }
+        crate::util::fs::write_atomic(path.as_ref(), out.as_bytes())
+    }
+
+    /// Column names.
+    pub fn columns(&self) -> &[String] {
+        &self.columns
+    }
+
+    /// Number of rows.
+    pub fn n_rows(&self) -> usize {
+        self.n_rows
+    }
+
+    /// Number of columns.
+    pub fn n_cols(&self) -> usize {
+        self.columns.len()
+    }
+
+    /// Row `i`.
+    ///
+    /// # Panics
+    /// If `i >= n_rows()`.
+    pub fn row(&self, i: usize) -> &[f64] {
+        let d = self.n_cols();
+        &self.values[i * d..(i + 1) * d]
+    }
+
+    /// All values, row-major.
+    pub fn values(&self) -> &[f64] {
+        &self.values
+    }
+
+    /// Column `j` as a vector.
+    pub fn column(&self, j: usize) -> Vec<f64> {
+        (0..self.n_rows).map(|i| self.row(i)[j]).collect()
+    }
+
+    /// The file the table came from (or a placeholder).
+    pub fn source(&self) -> &Path {
+        &self.source
+    }
+
+    /// The rows with the given indices, in that order.
+    ///
+    /// # Errors
+    /// [`Error::Data`] for an out-of-range index or an empty selection.
+    pub fn take_rows(&self, indices: &[usize]) -> Result<Table> {
+        let mut rows = Vec::with_capacity(indices.len());
+        for &i in indices {
+            if i >= self.n_rows {
+                return Err(Error::Data {
+                    path: self.source.clone(),
+                    reason: format!(
+                        "row index {i} is out of range (the table has {} rows)",
+                        self.n_rows
+                    ),
+                });
+            }
+            rows.push(self.row(i).to_vec());
+        }
+        Self::from_parts(self.columns.clone(), rows, self.source.clone())
+    }
+
+    /// The named columns, in the given order.
+    ///
+    /// # Errors
+    /// [`Error::Data`] naming an unknown column and listing the available ones.
+    pub fn select(&self, names: &[String]) -> Result<Table> {
+        let idx = column_indices(&self.columns, names).map_err(|reason| Error::Data {
+            path: self.source.clone(),
+            reason,
+        })?;
+        let rows = (0..self.n_rows)
+            .map(|i| idx.iter().map(|&j| self.row(i)[j]).collect())
+            .collect();
+        Self::from_parts(names.to_vec(), rows, self.source.clone())
+    }
+}
+
+fn quote(s: &str) -> String {
+    if s.contains([',', '"', '\n']) {
+        format!("\"{}\"", s.replace('"', "\"\""))
+    } else {
+        s.to_string()
+    }
+}
+
+pub(crate) fn check_names(columns: &[String]) -> std::result::Result<(), String> {
+    if columns.is_empty() {
+        return Err("no columns; the first line must name the columns".into());
+    }
+    for (j, c) in columns.iter().enumerate() {
+        if c.trim().is_empty() {
+            return Err(format!(
+                "column {} has an empty name; name every column in the header",
+                j + 1
+            ));
+        }
+        if let Some(k) = columns[..j].iter().position(|o| o == c) {
+            return Err(format!(
+                "column name '{c}' appears twice (columns {} and {}); rename one",
+                k + 1,
+                j + 1
+            ));
+        }
+    }
+    Ok(())
+}
+
+pub(crate) fn column_indices(
+    columns: &[String],
+    names: &[String],
+) -> std::result::Result<Vec<usize>, String> {
+    if names.is_empty() {
+        return Err("no columns selected; name at least one".into());
+    }
+    check_names(names)?;
+    names
+        .iter()
+        .map(|n| {
+            columns.iter().position(|c| c == n).ok_or_else(|| {
+                format!(
+                    "unknown column '{n}'; the columns are: {}",
+                    columns.join(", ")
+                )
+            })
+        })
+        .collect()
+}

@@ -1,0 +1,81 @@
+//! Per-epoch training history.
+
+use std::path::Path;
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::Result;
+
+/// One epoch's figures (ELBO terms are means per row, in nats, standardised units).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct EpochRecord {
+    /// Epoch number, from 1.
+    pub epoch: usize,
+    /// Optimiser steps taken so far.
+    pub step: u64,
+    /// Mean training ELBO per row over the epoch's minibatches.
+    pub train_elbo: f64,
+    /// Validation ELBO per row (`None` without validation rows).
+    pub val_elbo: Option<f64>,
+    /// Mean control cost per row (training).
+    pub control_cost: f64,
+    /// Mean reconstruction term `−log p(y | Z_T)` per row (training).
+    pub reconstruction: f64,
+    /// Learning rate at the end of the epoch.
+    pub learning_rate: f64,
+    /// Mean gradient norm before clipping.
+    pub grad_norm: f64,
+    /// Wall-clock seconds of the epoch.
+    pub seconds: f64,
+}
+
+/// All epochs so far.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct History {
+    /// Records in order.
+    pub epochs: Vec<EpochRecord>,
+}
+
+impl History {
+    /// CSV text with a header line.
+    pub fn to_csv(&self) -> String {
+        let mut s = String::from(
+            "epoch,step,train_elbo,val_elbo,control_cost,reconstruction,learning_rate,grad_norm,seconds\n",
+        );
+        for r in &self.epochs {
+            let val = r.val_elbo.map(|v| v.to_string()).unwrap_or_default();
+            s.push_str(&format!(
+                "{},{},{},{},{},{},{},{},{}\n",
+                r.epoch,
+                r.step,
+                r.train_elbo,
+                val,
+                r.control_cost,
+                r.reconstruction,
+                r.learning_rate,
+                r.grad_norm,
+                r.seconds
+            ));
+        }
+        s
+    }
+
+    /// Writes CSV (atomically).
+    ///
+    /// # Errors
+    /// [`crate::Error::Io`] if the file cannot be written.
+    pub fn write_csv(&self, path: impl AsRef<Path>) -> Result<()> {
+        crate::util::fs::write_atomic(path.as_ref(), self.to_csv().as_bytes())
+    }
+
+    /// Writes JSON (atomically).
+    ///
+    /// # Errors
+    /// [`crate::Error::Io`] if the file cannot be written.
+    pub fn write_json(&self, path: impl AsRef<Path>) -> Result<()> {
+        crate::util::fs::write_atomic(
+            path.as_ref(),
+            serde_json::to_string_pretty(self)?.as_bytes(),
+        )
+    }
+}

@@ -1,0 +1,61 @@
+//! What training has done so far: the resumable state, the end reason and the report.
+
+use serde::{Deserialize, Serialize};
+
+use crate::util::rng::Generator;
+
+/// Why training ended.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Termination {
+    /// All planned epochs ran.
+    MaxEpochs,
+    /// The validation ELBO stopped improving for `patience` epochs.
+    EarlyStopped,
+    /// The time budget ran out.
+    TimeBudget,
+}
+
+/// Everything needed to continue training exactly where it stopped.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TrainState {
+    /// Completed epochs.
+    pub epoch: usize,
+    /// Optimiser steps taken (including skipped ones).
+    pub step: u64,
+    /// Generator of minibatch order.
+    pub data_rng: Generator,
+    /// Generator of the training noise.
+    pub noise_rng: Generator,
+    /// Best validation (or training) ELBO per row so far.
+    pub best_elbo: Option<f64>,
+    /// Epoch of the best ELBO.
+    pub best_epoch: usize,
+    /// Epochs since the best ELBO.
+    pub epochs_since_best: usize,
+    /// Non-finite steps so far.
+    pub failures: usize,
+    /// Multiplier of the scheduled learning rate (halved at each failure).
+    pub lr_scale: f64,
+    /// Set when training has ended.
+    pub finished: Option<Termination>,
+    /// Number of rows of the table trained on.
+    pub table_rows: usize,
+    /// Fingerprint of the table's values (to refuse resuming on other data).
+    pub table_fingerprint: u64,
+}
+
+/// Summary returned by [`crate::Trainer::fit`].
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TrainReport {
+    /// Epochs completed.
+    pub epochs: usize,
+    /// Epoch whose weights were kept.
+    pub best_epoch: usize,
+    /// Best validation (or training) ELBO per row, standardised units.
+    pub best_elbo: Option<f64>,
+    /// Why training ended.
+    pub termination: Termination,
+    /// Seconds spent in this run.
+    pub seconds: f64,
+}
