@@ -42,7 +42,7 @@ fn table_curve(name: &str, table: &Table, epochs: usize) -> Result<()> {
         d.join(format!("{name}.svg")),
     )?;
     let model = trainer.into_model();
-    let e = model.evaluate(&test, 128, 0)?;
+    let e = model.evaluate(&test, EvalOptions::new(128, 0))?;
     println!(
         "{}",
         serde_json::json!({
@@ -56,13 +56,18 @@ fn table_curve(name: &str, table: &Table, epochs: usize) -> Result<()> {
 
 fn sampler_curve() -> Result<()> {
     let target = GaussianMixture::ring_2d().with_log_scale(1.5);
-    let mut s = Sampler::new(Arc::new(target.clone()), SamplerConfig::default())?;
+    let cfg = SamplerConfig {
+        iterations: 1500,
+        ..SamplerConfig::default()
+    };
+    let mut s = Sampler::new(Arc::new(target.clone()), cfg)?;
     let mut csv = String::from("iteration,free_energy,log_z\n");
     let (mut fe, mut lz) = (Vec::new(), Vec::new());
     let t0 = std::time::Instant::now();
     for block in 1..=30 {
-        s.train(50)?;
-        let est = s.estimate(1024, block)?;
+        s.set_iterations(block as usize * 50);
+        s.fit()?;
+        let est = s.estimate(EstimateOptions::new(1024, block))?;
         let it = (block * 50) as f64;
         csv.push_str(&format!("{it},{},{}\n", est.free_energy, est.log_z));
         fe.push((it, -est.free_energy));
@@ -80,7 +85,7 @@ fn sampler_curve() -> Result<()> {
         ],
         d.join("sampler_ring.svg"),
     )?;
-    let est = s.estimate(8192, 999)?;
+    let est = s.estimate(EstimateOptions::new(8192, 999))?;
     println!(
         "{}",
         serde_json::json!({

@@ -189,11 +189,11 @@ fn sampler(a: &Args) -> Result<(Vec<f64>, f64)> {
         },
         control: mlp(a.hidden),
         batch_size: a.batch,
-        optimizer: AdamWConfig {
-            learning_rate: 1e-3,
-            ..Default::default()
+        optimizer: OptimizerConfig {
+            max_grad_norm: None,
+            ..OptimizerConfig::constant(1e-3)
         },
-        max_grad_norm: None,
+        iterations: a.iters + 3,
         ..Default::default()
     };
     let mut s = Sampler::new(target, cfg)?;

@@ -8,8 +8,8 @@ use std::sync::Arc;
 use candle_core::{Tensor, D};
 use neural_sde::ops::linear;
 use neural_sde::{
-    builtin_demo, Activation, Drift, LatentConfig, Param, ParamBuilder, PriorFactory, TabularModel,
-    TrainConfig, Trainer,
+    builtin_demo, Activation, Drift, EvalOptions, LatentConfig, Param, ParamBuilder, PriorFactory,
+    TabularModel, TrainConfig, Trainer,
 };
 use rand::RngCore;
 
@@ -112,7 +112,7 @@ fn main() -> neural_sde::Result<()> {
     let path = std::env::temp_dir().join("custom_drift.safetensors");
     trainer.save(&path)?;
     let model = TabularModel::load_with_prior(&path, &factory)?;
-    let e = model.evaluate(&table, 32, 0)?;
+    let e = model.evaluate(&table, EvalOptions::new(32, 0))?;
     println!(
         "log-likelihood per dimension on the demo table: {:.4} (ELBO {:.4})",
         e.loglik_per_dim, e.elbo_per_dim

@@ -2,7 +2,7 @@
 //!
 //! Run with `cargo run --release --example fit_table`.
 
-use neural_sde::{builtin_demo, LatentConfig, TrainConfig, Trainer};
+use neural_sde::{builtin_demo, EvalOptions, LatentConfig, TrainConfig, Trainer};
 
 fn main() -> neural_sde::Result<()> {
     // The built-in synthetic demo table; hold out every fifth row for an honest evaluation.
@@ -25,7 +25,7 @@ fn main() -> neural_sde::Result<()> {
     let model = trainer.into_model();
 
     for k in [1, 16, 128] {
-        let e = model.evaluate(&test, k, 0)?;
+        let e = model.evaluate(&test, EvalOptions::new(k, 0))?;
         println!(
             "held-out, K = {k:3}: ELBO/dim {:8.4}   log-likelihood/dim {:8.4}",
             e.elbo_per_dim, e.loglik_per_dim

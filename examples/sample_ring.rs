@@ -7,24 +7,26 @@
 use std::sync::Arc;
 
 use candle_core::{Device, Tensor};
-use neural_sde::{GaussianMixture, LogDensity, Sampler, SamplerConfig};
+use neural_sde::{EstimateOptions, GaussianMixture, LogDensity, Sampler, SamplerConfig};
 
 fn main() -> neural_sde::Result<()> {
     // Four Gaussian bumps on a ring, multiplied by e^{1.5}: the true log Z is 1.5.
     let target = GaussianMixture::ring_2d().with_log_scale(1.5);
     let log_z_true = target.log_z();
-    let mut sampler = Sampler::new(Arc::new(target.clone()), SamplerConfig::default())?;
-    let iterations = 1500;
-    for i in 0..iterations {
-        let v = sampler.step()?;
-        if i % 250 == 0 || i + 1 == iterations {
-            println!(
-                "step {i:5}  free energy {:8.4}  control cost {:7.4}",
-                v.loss, v.control_cost
-            );
-        }
+    let cfg = SamplerConfig {
+        iterations: 1500,
+        ..SamplerConfig::default()
+    };
+    let mut sampler = Sampler::new(Arc::new(target.clone()), cfg)?;
+    let report = sampler.fit()?;
+    for r in sampler.history().iter().filter(|r| r.step % 250 == 1) {
+        println!(
+            "step {:5}  free energy {:8.4}  control cost {:7.4}",
+            r.step, r.loss, r.control_cost
+        );
     }
-    let est = sampler.estimate(8192, 7)?;
+    println!("{report}");
+    let est = sampler.estimate(EstimateOptions::new(8192, 7))?;
     println!(
         "log Z estimate  {:.4} ± {:.4}  (true {log_z_true})",
         est.log_z, est.log_z_se

@@ -93,9 +93,15 @@ pub use error::{Error, Result};
 pub use nn::ops::{self, Activation};
 pub use nn::optim::{AdamW, AdamWConfig, StepStats};
 pub use nn::params::{frozen, is_frozen, sorted_vars, Param, ParamBuilder};
+pub use nn::recovery::RecoveryState;
+pub use nn::schedule::OptimizerConfig;
+pub use nn::termination::Termination;
 pub use sampler::ratio::LogDensityRatio;
 pub use sampler::target::{FnDensity, GaussianDensity, GaussianMixture, LogDensity};
-pub use sampler::{estimate_log_z, FollmerDrift, LogZEstimate, Sampler, SamplerConfig};
+pub use sampler::{
+    estimate_log_z, EstimateOptions, FollmerDrift, LogZEstimate, Sampler, SamplerConfig,
+    SamplerObserver, SamplerRecord, SamplerReport, SamplerState,
+};
 pub use sde::diffusion::Diffusion;
 pub use sde::drift::{Drift, FnDrift, MlpConfig, ModuleDrift, TimeMlp};
 pub use sde::noise::BrownianIncrements;
@@ -103,7 +109,8 @@ pub use sde::objective::{FreeEnergy, FreeEnergyValues};
 pub use sde::solver::{simulate, Kernel, Paths, Scheme, Sde, SolverConfig};
 pub use sde::terminal::{BernoulliNll, GaussianNll, TerminalCost};
 pub use tabular::demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
-pub use tabular::fitted::{Evaluation, TabularModel};
+pub use tabular::evaluation::{EvalOptions, Evaluation};
+pub use tabular::fitted::TabularModel;
 pub use tabular::model::{
     Decoder, DecoderConfig, DecoderKind, LatentConfig, LatentModel, PathTerms, PriorFactory,
 };
@@ -112,8 +119,7 @@ pub use tabular::split::split_rows;
 pub use tabular::summary::{inspect_checkpoint, CheckpointSummary};
 pub use tabular::table::Table;
 pub use tabular::train::{
-    EpochRecord, History, Observer, StepInfo, Termination, TrainConfig, TrainReport, TrainState,
-    Trainer,
+    EpochRecord, History, Observer, StepInfo, TrainConfig, TrainReport, TrainState, Trainer,
 };
 pub use util::precision::Precision;
 pub use util::rng::{generator, standard_normals, Generator};

@@ -147,18 +147,19 @@ fn trained_control_reaches_minus_log_z_and_kl() {
         0.5 * (3.0 + 0.09 + 0.49 - 2.0 - det.ln())
     };
     assert_rel("KL B", kl, 0.5101921060322887, 1e-12);
+    // 600 steps, the learning rate decaying (cosine) from 3e-3 to 1e-3.
     let cfg = SamplerConfig {
         seed: 3,
+        iterations: 600,
+        optimizer: OptimizerConfig {
+            final_lr_fraction: 1.0 / 3.0,
+            ..OptimizerConfig::constant(3e-3)
+        },
         ..Default::default()
     };
     let mut sampler = Sampler::new(target, cfg).unwrap();
-    for i in 0..600 {
-        if i == 400 {
-            sampler.optimizer_mut().set_learning_rate(1e-3);
-        }
-        sampler.step().unwrap();
-    }
-    let est = sampler.estimate(8192, 99).unwrap();
+    assert_eq!(sampler.fit().unwrap().termination, Termination::MaxEpochs);
+    let est = sampler.estimate(EstimateOptions::new(8192, 99)).unwrap();
     // Objective within 0.05 nats of −log Z, control cost within 0.1 nats of KL.
     assert!(
         (est.free_energy + log_z).abs() < 0.05,

@@ -125,7 +125,14 @@ fn weighted_log_z_recovers_known_constant() {
         Tensor::from_vec(out, x.dims(), x.device())
     });
     let sde = Sde::new(&sigma).with_control(&follmer);
-    let est = estimate_log_z(&sde, &terminal, &cfg, DType::F64, 20_000, 5).unwrap();
+    let est = estimate_log_z(
+        &sde,
+        &terminal,
+        &cfg,
+        DType::F64,
+        EstimateOptions::new(20_000, 5),
+    )
+    .unwrap();
     assert_within(
         "log Z (Föllmer)",
         est.log_z,
@@ -143,7 +150,14 @@ fn weighted_log_z_recovers_known_constant() {
     // The zero control: unbiased too, but far noisier.
     let zero = FnDrift::new(2, |x, _t, _c| x.zeros_like());
     let sde0 = Sde::new(&sigma).with_control(&zero);
-    let est0 = estimate_log_z(&sde0, &terminal, &cfg, DType::F64, 20_000, 6).unwrap();
+    let est0 = estimate_log_z(
+        &sde0,
+        &terminal,
+        &cfg,
+        DType::F64,
+        EstimateOptions::new(20_000, 6),
+    )
+    .unwrap();
     assert_within(
         "log Z (u = 0)",
         est0.log_z,

@@ -101,7 +101,7 @@ fn importance_weighted_estimate_tightens_to_closed_form() {
     let mut last_gap = f64::INFINITY;
     let mut last = f64::NEG_INFINITY;
     for (k, seed) in [(1, 1), (8, 2), (64, 3), (1024, 4)] {
-        let e = model.evaluate(&rows, k, seed).unwrap();
+        let e = model.evaluate(&rows, EvalOptions::new(k, seed)).unwrap();
         // ELBO ≤ IWAE bound ≤ log p (Burda, Grosse & Salakhutdinov 2016, Theorem 1),
         // within Monte Carlo error.
         assert!(
@@ -143,7 +143,7 @@ fn initial_model_is_the_gaussian_fit_and_its_control_is_near_optimal() {
     let rows = table.take_rows(&(0..50).collect::<Vec<_>>()).unwrap();
     let exact_rows: Vec<f64> = (0..50).map(|i| exact_loglik(&model, rows.row(i))).collect();
     let exact = exact_rows.iter().sum::<f64>() / 50.0;
-    let e = model.evaluate(&rows, 64, 9).unwrap();
+    let e = model.evaluate(&rows, EvalOptions::new(64, 9)).unwrap();
     // Per-row differences: Monte Carlo noise plus the O(1/K) bias of a log of a mean, which
     // is below 0.01 nats here at K = 64 (the ELBO gap bounds the weight variance).
     let diff: Vec<f64> = e

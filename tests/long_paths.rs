@@ -10,6 +10,7 @@ fn thousand_step_paths_train() {
     let target = Arc::new(GaussianMixture::new(vec![vec![1.0, -1.0]], 0.8).unwrap());
     let cfg = SamplerConfig {
         batch_size: 16,
+        iterations: 3,
         solver: SolverConfig {
             n_steps: 1000,
             ..Default::default()
@@ -17,9 +18,10 @@ fn thousand_step_paths_train() {
         ..Default::default()
     };
     let mut s = Sampler::new(target, cfg).unwrap();
-    let losses = s.train(3).unwrap();
-    assert!(losses.iter().all(|l| l.loss.is_finite()));
-    let est = s.estimate(64, 0).unwrap();
+    let report = s.fit().unwrap();
+    assert_eq!(report.steps, 3);
+    assert!(s.history().iter().all(|r| r.loss.is_finite()));
+    let est = s.estimate(EstimateOptions::new(64, 0)).unwrap();
     assert!(est.log_z.is_finite());
 }
 
@@ -76,7 +78,7 @@ fn custom_prior_two_thousand_steps_evaluate_and_generate() {
     };
     let trainer = Trainer::with_prior(&table, model_cfg, train, scaled_prior()).unwrap();
     let model = trainer.into_model();
-    let eval = model.evaluate(&table, 2, 0).unwrap();
+    let eval = model.evaluate(&table, EvalOptions::new(2, 0)).unwrap();
     assert_eq!(eval.rows, 24);
     assert!(eval.loglik_per_row.is_finite());
     let generated = model.generate(16, 1).unwrap();

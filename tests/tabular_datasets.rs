@@ -3,7 +3,7 @@
 #[path = "support/baseline.rs"]
 mod baseline;
 
-use neural_sde::{LatentConfig, TrainConfig, Trainer};
+use neural_sde::{EvalOptions, LatentConfig, TrainConfig, Trainer};
 
 /// Trains at default settings on the "mod5" training rows and returns (model, Gaussian)
 /// held-out log-likelihood per dimension in the data's units.
@@ -13,7 +13,7 @@ fn compare(table: &neural_sde::Table, train_cfg: TrainConfig) -> (f64, f64, f64)
     let mut trainer = Trainer::new(&train, LatentConfig::default(), train_cfg).unwrap();
     trainer.fit().unwrap();
     let model = trainer.into_model();
-    let eval = model.evaluate(&test, 128, 11).unwrap();
+    let eval = model.evaluate(&test, EvalOptions::new(128, 11)).unwrap();
     (
         eval.loglik_per_dim,
         eval.loglik_se / eval.dims as f64,

@@ -2,6 +2,7 @@
 //! and generation.
 mod common;
 
+use std::ops::ControlFlow;
 use std::sync::{Arc, Mutex};
 
 use common::*;
@@ -44,14 +45,14 @@ struct Counts {
 struct Recorder(Arc<Mutex<Counts>>);
 
 impl Observer for Recorder {
-    fn on_step(&mut self, info: &StepInfo) -> Result<()> {
+    fn on_step(&mut self, info: &StepInfo) -> Result<ControlFlow<()>> {
         assert!(info.loss.is_finite() && info.batch <= info.batches);
         self.0.lock().unwrap().steps += 1;
-        Ok(())
+        Ok(ControlFlow::Continue(()))
     }
-    fn on_epoch(&mut self, r: &EpochRecord) -> Result<()> {
+    fn on_epoch(&mut self, r: &EpochRecord) -> Result<ControlFlow<()>> {
         self.0.lock().unwrap().epochs.push(r.epoch);
-        Ok(())
+        Ok(ControlFlow::Continue(()))
     }
 }
 
@@ -70,10 +71,14 @@ fn history_and_observer() {
     assert_eq!(c.steps, 15);
     let h = tr.history();
     assert_eq!(h.epochs.len(), 3);
-    assert!(h
-        .epochs
-        .iter()
-        .all(|r| r.val_elbo.is_some() && r.seconds >= 0.0 && r.learning_rate > 0.0));
+    for (e, r) in h.epochs.iter().enumerate() {
+        // Five minibatches per epoch; the last one's learning rate is still in the linear
+        // warm-up of 50 steps: peak · step / 50 (linear warm-up, common practice, no source).
+        assert_eq!(r.step, 5 * (e as u64 + 1));
+        let peak = TrainConfig::default().optimizer.learning_rate();
+        assert_eq!(r.learning_rate, peak * r.step as f64 / 50.0);
+        assert!(r.val_elbo.is_some_and(f64::is_finite) && r.train_elbo.is_finite());
+    }
     let d = std::env::temp_dir().join(format!("neural-sde-history-{}", std::process::id()));
     std::fs::create_dir_all(&d).unwrap();
     h.write_csv(d.join("h.csv")).unwrap();
@@ -88,7 +93,7 @@ fn history_and_observer() {
 
 struct Failing;
 impl Observer for Failing {
-    fn on_epoch(&mut self, _r: &EpochRecord) -> Result<()> {
+    fn on_epoch(&mut self, _r: &EpochRecord) -> Result<ControlFlow<()>> {
         Err(Error::Training("stop requested by the observer".into()))
     }
 }
@@ -122,8 +127,7 @@ fn non_finite_steps_restore_state_then_stop_with_best_weights() {
     let (m, c) = small();
     // An absurd learning rate drives the weights to overflow.
     let cfg = TrainConfig {
-        learning_rate: 1e30,
-        warmup_steps: 0,
+        optimizer: OptimizerConfig::constant(1e30),
         epochs: 50,
         ..c
     };
@@ -136,8 +140,10 @@ fn non_finite_steps_restore_state_then_stop_with_best_weights() {
     let e = tr.fit().unwrap_err();
     assert!(matches!(e, Error::Training(_)), "{e}");
     assert!(e.to_string().contains("non-finite steps"), "{e}");
-    assert!(tr.state().failures > tr.config().max_failures);
-    assert!(tr.state().lr_scale < 1.0);
+    // Each failure halves the learning-rate scale.
+    let rec = tr.state().recovery;
+    assert_eq!(rec.failures, tr.config().max_failures + 1);
+    assert_eq!(rec.lr_scale, 0.5f64.powi(rec.failures as i32));
     // The best weights (here the initial Gaussian fit, epoch 0) are what the trainer holds.
     let now: Vec<Vec<f32>> = sorted_vars(tr.model().latent().varmap())
         .unwrap()
@@ -145,7 +151,7 @@ fn non_finite_steps_restore_state_then_stop_with_best_weights() {
         .map(|(_, v)| v.as_tensor().flatten_all().unwrap().to_vec1().unwrap())
         .collect();
     assert_eq!(initial, now);
-    let ev = tr.model().evaluate(&t, 4, 0).unwrap();
+    let ev = tr.model().evaluate(&t, EvalOptions::new(4, 0)).unwrap();
     assert!(ev.loglik_per_row.is_finite());
 }
 
@@ -237,4 +243,109 @@ fn generation_from_the_initial_model_follows_the_gaussian_fit() {
         model.generate(100, 3).unwrap().values(),
         model.generate(100, 4).unwrap().values()
     );
+}
+
+/// Asks training to stop after `after` optimiser steps.
+struct StopAfter(usize);
+impl Observer for StopAfter {
+    fn on_step(&mut self, _info: &StepInfo) -> Result<ControlFlow<()>> {
+        // Fires once: past zero the count wraps around.
+        self.0 = self.0.wrapping_sub(1);
+        Ok(if self.0 == 0 {
+            ControlFlow::Break(())
+        } else {
+            ControlFlow::Continue(())
+        })
+    }
+}
+
+#[test]
+fn an_observer_stops_training_without_an_error_and_fit_continues_later() {
+    let t = table(200);
+    let (m, c) = small();
+    let mut tr = Trainer::new(&t, m, c).unwrap();
+    tr.add_observer(Box::new(StopAfter(2)));
+    let rep = tr.fit().unwrap();
+    assert_eq!(rep.termination, Termination::Requested);
+    // The epoch ends at the request: one epoch of two steps.
+    assert_eq!(rep.epochs, 1);
+    assert_eq!(tr.state().step, 2);
+    assert_eq!(tr.history().epochs[0].step, 2);
+    // A second call continues (the observer no longer asks to stop) to the planned epochs.
+    let rep = tr.fit().unwrap();
+    assert_eq!(rep.termination, Termination::MaxEpochs);
+    assert_eq!(rep.epochs, 3);
+}
+
+#[test]
+fn a_fit_stopped_by_its_time_budget_continues_on_the_next_call() {
+    let t = table(200);
+    let (m, c) = small();
+    let mut tr = Trainer::new(
+        &t,
+        m,
+        TrainConfig {
+            time_budget_secs: Some(1e-9),
+            ..c
+        },
+    )
+    .unwrap();
+    assert_eq!(tr.fit().unwrap().termination, Termination::TimeBudget);
+    assert_eq!(tr.state().step, 0);
+    tr.set_time_budget(None).unwrap();
+    let rep = tr.fit().unwrap();
+    assert_eq!(rep.termination, Termination::MaxEpochs);
+    // The epoch cut short by the budget counts as one (with no step): two full ones follow.
+    assert_eq!(rep.epochs, 3);
+    assert_eq!(tr.state().step, 2 * 5);
+    assert!(tr.history().epochs[0].train_elbo.is_nan());
+    assert!(tr.set_time_budget(Some(-1.0)).is_err());
+}
+
+#[test]
+fn step_runs_one_minibatch_and_returns_the_record_at_the_epoch_end() {
+    let t = table(200);
+    let (m, c) = small();
+    let mut tr = Trainer::new(&t, m.clone(), c.clone()).unwrap();
+    let d = std::env::temp_dir().join(format!("neural-sde-step-{}", std::process::id()));
+    std::fs::create_dir_all(&d).unwrap();
+    for k in 1..=4 {
+        assert!(tr.step().unwrap().is_none(), "step {k}");
+        assert_eq!(tr.state().step, k);
+    }
+    // Checkpoints are taken between epochs.
+    let e = tr.save(d.join("mid.safetensors")).unwrap_err().to_string();
+    assert!(e.contains("middle of an epoch"), "{e}");
+    assert!(!d.join("mid.safetensors").exists());
+    let r = tr
+        .step()
+        .unwrap()
+        .expect("the fifth minibatch ends the epoch");
+    assert_eq!((r.epoch, r.step), (1, 5));
+    tr.save(d.join("end.safetensors")).unwrap();
+    // Stepping by hand gives the same epoch as run_epoch.
+    let mut other = Trainer::new(&t, m, c).unwrap();
+    let r2 = other.run_epoch().unwrap();
+    assert_eq!(r.train_elbo.to_bits(), r2.train_elbo.to_bits());
+    assert_eq!(r.val_elbo.map(f64::to_bits), r2.val_elbo.map(f64::to_bits));
+}
+
+#[test]
+fn periodic_checkpoints_are_written_and_resume() {
+    let t = table(200);
+    let (m, c) = small();
+    let d = std::env::temp_dir().join(format!("neural-sde-periodic-{}", std::process::id()));
+    std::fs::create_dir_all(&d).unwrap();
+    let p = d.join("every2.safetensors");
+    let mut tr = Trainer::new(&t, m, c).unwrap();
+    assert!(tr.checkpoint_every(0, &p).is_err());
+    tr.checkpoint_every(2, &p).unwrap();
+    tr.run_epoch().unwrap();
+    assert!(!p.exists(), "no checkpoint after epoch 1");
+    tr.run_epoch().unwrap();
+    let at2 = Trainer::resume(&p, &t).unwrap();
+    assert_eq!(at2.state(), tr.state());
+    tr.run_epoch().unwrap();
+    // Epoch 3 is not a multiple of 2: the file still holds epoch 2.
+    assert_eq!(Trainer::resume(&p, &t).unwrap().state().epoch, 2);
 }

@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use clap::Args;
-use neural_sde::TabularModel;
+use neural_sde::{EvalOptions, TabularModel};
 
 use super::{load_table, positive_usize, Failure};
 
@@ -30,7 +30,7 @@ pub struct EvaluateArgs {
 pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
     let model = TabularModel::load(&a.model)?;
     let table = load_table(a.data.as_deref(), a.demo, Some(model.columns()))?;
-    let e = model.evaluate(&table, a.paths, a.seed)?;
+    let e = model.evaluate(&table, EvalOptions::new(a.paths, a.seed))?;
     if a.json {
         let v = serde_json::json!({
             "rows": e.rows,
@@ -44,19 +44,7 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
         });
         println!("{v}");
     } else {
-        println!(
-            "rows {}, columns {}, posterior paths per row {}",
-            e.rows, e.dims, e.paths
-        );
-        println!(
-            "ELBO                      {:10.4} per row  {:8.4} per dimension",
-            e.elbo_per_row, e.elbo_per_dim
-        );
-        println!(
-            "log-likelihood (IW, K={}) {:10.4} per row  {:8.4} per dimension  (± {:.4} per row)",
-            e.paths, e.loglik_per_row, e.loglik_per_dim, e.loglik_se
-        );
-        println!("nats, in the data's own units");
+        println!("{e}");
     }
     Ok(())
 }

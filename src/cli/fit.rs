@@ -3,7 +3,9 @@
 use std::path::PathBuf;
 
 use clap::Args;
-use neural_sde::{LatentConfig, MlpConfig, SolverConfig, Termination, TrainConfig, Trainer};
+use neural_sde::{
+    AdamWConfig, LatentConfig, MlpConfig, OptimizerConfig, SolverConfig, TrainConfig, Trainer,
+};
 
 use super::{check_output, fraction, load_table, positive_f64, positive_usize, Failure};
 
@@ -60,6 +62,10 @@ pub struct FitArgs {
     /// taken from the checkpoint).
     #[arg(long)]
     resume: Option<PathBuf>,
+    /// Also write the training checkpoint to --out every N epochs while fitting (atomically),
+    /// so that a killed fit can be continued with --resume.
+    #[arg(long, value_parser = positive_usize)]
+    checkpoint_every: Option<usize>,
 }
 
 pub fn run(a: FitArgs) -> Result<(), Failure> {
@@ -95,7 +101,13 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
             let train = TrainConfig {
                 epochs: a.epochs,
                 batch_size: a.batch_size,
-                learning_rate: a.learning_rate,
+                optimizer: OptimizerConfig {
+                    adamw: AdamWConfig {
+                        learning_rate: a.learning_rate,
+                        ..AdamWConfig::default()
+                    },
+                    ..OptimizerConfig::default()
+                },
                 seed: a.seed,
                 validation_fraction: a.validation_fraction,
                 ..TrainConfig::default()
@@ -103,7 +115,10 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
             Trainer::new(&table, model, train)?
         }
     };
-    trainer.set_time_budget(Some(a.time_budget));
+    trainer.set_time_budget(Some(a.time_budget))?;
+    if let Some(every) = a.checkpoint_every {
+        trainer.checkpoint_every(every, &a.out)?;
+    }
     let dims = table.n_cols();
     let jac = trainer.model().scaler().log_jacobian();
     let progress = super::progress::Progress::new(dims, jac, Some(a.time_budget));
@@ -133,11 +148,7 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
     }
     let report = report.ok_or_else(|| Failure::input("training produced no report"))?;
     let state = trainer.state();
-    let how = match report.termination {
-        Termination::MaxEpochs => "ran all epochs",
-        Termination::EarlyStopped => "stopped early (validation ELBO no longer improving)",
-        Termination::TimeBudget => "stopped at the time budget",
-    };
+    let how = report.termination;
     let rows = table.n_rows();
     println!(
         "fitted {dims} columns of {rows} rows in {:.1} s: {how} after {} epochs; kept epoch {}",

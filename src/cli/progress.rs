@@ -1,5 +1,7 @@
 //! A progress bar on stderr, fed by the trainer's observer hooks.
 
+use std::ops::ControlFlow;
+
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use neural_sde::{EpochRecord, Observer, StepInfo};
 
@@ -41,7 +43,7 @@ fn clock(s: f64) -> String {
 }
 
 impl Observer for Progress {
-    fn on_step(&mut self, info: &StepInfo) -> neural_sde::Result<()> {
+    fn on_step(&mut self, info: &StepInfo) -> neural_sde::Result<ControlFlow<()>> {
         let total = (info.epochs * info.batches) as u64;
         let done = ((info.epoch - 1) * info.batches + info.batch) as u64;
         self.bar.set_length(total);
@@ -61,11 +63,11 @@ impl Observer for Progress {
             info.epochs,
             clock(left)
         ));
-        Ok(())
+        Ok(ControlFlow::Continue(()))
     }
 
-    fn on_epoch(&mut self, record: &EpochRecord) -> neural_sde::Result<()> {
+    fn on_epoch(&mut self, record: &EpochRecord) -> neural_sde::Result<ControlFlow<()>> {
         self.last_elbo = Some(record.val_elbo.unwrap_or(record.train_elbo));
-        Ok(())
+        Ok(ControlFlow::Continue(()))
     }
 }

@@ -158,3 +158,32 @@ pub(crate) fn read_tensors(
     }
     Ok(tensors)
 }
+
+/// Copies the tensors named like `varmap`'s variables out of `file` into them, after
+/// checking each shape.
+///
+/// # Errors
+/// [`Error::Checkpoint`] naming a missing or mis-shaped tensor.
+pub(crate) fn load_vars(
+    path: &Path,
+    varmap: &candle_nn::VarMap,
+    file: &HashMap<String, Tensor>,
+) -> Result<()> {
+    for (name, var) in crate::nn::params::sorted_vars(varmap)? {
+        let t = file
+            .get(&name)
+            .ok_or_else(|| bad(path, format!("tensor {name} is missing")))?;
+        if t.dims() != var.dims() {
+            return Err(bad(
+                path,
+                format!(
+                    "tensor {name} has shape {:?}, expected {:?}",
+                    t.dims(),
+                    var.dims()
+                ),
+            ));
+        }
+        var.set(t)?;
+    }
+    Ok(())
+}

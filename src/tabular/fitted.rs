@@ -9,39 +9,12 @@ use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, Result};
 use crate::nn::params::sorted_vars;
+use crate::tabular::evaluation::{EvalOptions, Evaluation};
 use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory};
 use crate::tabular::scaler::Standardizer;
 use crate::tabular::table::Table;
 use crate::tabular::train::history::History;
 use crate::util::rng::{generator, streams};
-
-/// Log-likelihood figures of a model on some rows, in nats and in the data's own units
-/// (the standardisation Jacobian `−Σ_j log scale_j` included).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct Evaluation {
-    /// Number of rows.
-    pub rows: usize,
-    /// Number of columns `D`.
-    pub dims: usize,
-    /// Posterior paths per row `K`.
-    pub paths: usize,
-    /// Mean ELBO per row.
-    pub elbo_per_row: f64,
-    /// Mean ELBO per row divided by `D`.
-    pub elbo_per_dim: f64,
-    /// Mean importance-weighted log-likelihood per row, `log (1/K) Σ_k w_k`: a lower bound on
-    /// `log p(y)` in expectation that tightens as `K` grows (Burda, Grosse & Salakhutdinov,
-    /// *Importance Weighted Autoencoders*, ICLR 2016, Theorem 1).
-    pub loglik_per_row: f64,
-    /// Mean importance-weighted log-likelihood per row divided by `D`.
-    pub loglik_per_dim: f64,
-    /// Standard error (over rows) of `loglik_per_row`.
-    pub loglik_se: f64,
-    /// ELBO of each row.
-    pub elbo_rows: Vec<f64>,
-    /// Importance-weighted log-likelihood of each row.
-    pub loglik_rows: Vec<f64>,
-}
 
 /// A latent-diffusion model of a table, with its standardisation and column names.
 ///
@@ -118,13 +91,14 @@ impl TabularModel {
         })
     }
 
-    /// ELBO and importance-weighted log-likelihood from `paths` posterior paths per row,
-    /// streamed in chunks (memory does not grow with the number of rows).
+    /// ELBO and importance-weighted log-likelihood from `options.paths` posterior paths per
+    /// row, streamed in chunks (memory does not grow with the number of rows).
     ///
     /// # Errors
     /// [`Error::Data`] if the table lacks the model's columns; [`Error::InvalidConfig`] for
-    /// `paths == 0`.
-    pub fn evaluate(&self, table: &Table, paths: usize, seed: u64) -> Result<Evaluation> {
+    /// 0 paths.
+    pub fn evaluate(&self, table: &Table, options: EvalOptions) -> Result<Evaluation> {
+        let EvalOptions { paths, seed } = options;
         if paths == 0 {
             return Err(Error::config(
                 "paths",
@@ -268,20 +242,8 @@ impl TabularModel {
         // Rebuild the model, then copy every weight in after checking its shape.
         let model = LatentModel::build(&header.model_config, header.data_dim, 0, factory)
             .map_err(|e| bad(format!("the stored configuration is invalid ({e})")))?;
+        crate::nn::checkpoint::load_vars(path, model.varmap(), &file)?;
         let vars = sorted_vars(model.varmap())?;
-        for (name, var) in &vars {
-            let t = file
-                .get(name)
-                .ok_or_else(|| bad(format!("tensor {name} is missing")))?;
-            if t.dims() != var.dims() {
-                return Err(bad(format!(
-                    "tensor {name} has shape {:?}, expected {:?}",
-                    t.dims(),
-                    var.dims()
-                )));
-            }
-            var.set(t)?;
-        }
         for name in file.keys() {
             let base = name
                 .strip_prefix("optim.m.")

@@ -4,6 +4,7 @@
 #[cfg(feature = "csv")]
 mod csv_io;
 pub(crate) mod demo;
+pub(crate) mod evaluation;
 pub(crate) mod fitted;
 pub(crate) mod model;
 pub(crate) mod scaler;

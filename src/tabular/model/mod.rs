@@ -367,13 +367,21 @@ impl LatentModel {
             .with_control(&nets.control)
     }
 
-    /// The free energy of standardised rows `y` `(batch, D)` on the given latent noise,
-    /// keeping the autodiff graph (run it inside [`crate::run_deep`] for long grids).
+    /// The free energy of standardised rows `y` `(batch, D)`, one posterior path per row
+    /// with latent noise drawn from `rng` on the model's grid, keeping the autodiff graph
+    /// (run it inside [`crate::run_deep`] for long grids).
     ///
     /// # Errors
     /// [`Error::Shape`] for mismatched shapes.
-    pub fn free_energy(&self, y: &Tensor, noise: &BrownianIncrements) -> Result<FreeEnergy> {
+    pub fn free_energy(&self, y: &Tensor, rng: &mut dyn RngCore) -> Result<FreeEnergy> {
         let batch = y.dim(0)?;
+        let noise = &self.cfg.solver.sample_noise(
+            rng,
+            batch,
+            self.latent_dim,
+            self.dtype(),
+            &self.device,
+        )?;
         let x0 = Tensor::zeros((batch, self.latent_dim), self.dtype(), &self.device)?;
         let paths = simulate(&self.sde(&self.nets), &self.cfg.solver, &x0, noise, Some(y))?;
         FreeEnergy::new(&paths, &self.nets.nll, Some(y))
@@ -381,10 +389,7 @@ impl LatentModel {
 
     /// Posterior paths for standardised rows `y` without an autodiff graph: importance
     /// log-weights, single-path ELBO terms and per-dimension NLL.
-    ///
-    /// # Errors
-    /// [`Error::Shape`] for mismatched shapes.
-    pub fn path_terms(&self, y: &Tensor, noise: &BrownianIncrements) -> Result<PathTerms> {
+    fn path_terms(&self, y: &Tensor, noise: &BrownianIncrements) -> Result<PathTerms> {
         run_deep(|| frozen(|| self.path_terms_frozen(y, noise)))?
     }
 

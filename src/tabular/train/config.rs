@@ -3,6 +3,7 @@
 use serde::{Deserialize, Serialize};
 
 use crate::error::{check_positive, Error, Result};
+use crate::nn::schedule::OptimizerConfig;
 
 /// Settings of a [`crate::Trainer`].
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -16,16 +17,10 @@ pub struct TrainConfig {
     /// passes over the rows (each freshly shuffled), so early stopping and the schedule see
     /// comparable amounts of training whatever the table size.
     pub min_steps_per_epoch: usize,
-    /// Peak learning rate of AdamW.
-    pub learning_rate: f64,
-    /// Steps of linear warm-up from 0 to the peak learning rate.
-    pub warmup_steps: usize,
-    /// The learning rate decays (cosine) to this fraction of the peak by the last epoch.
-    pub final_lr_fraction: f64,
-    /// Decoupled weight decay of AdamW.
-    pub weight_decay: f64,
-    /// Gradient-norm clipping threshold.
-    pub max_grad_norm: f64,
+    /// AdamW, its schedule (warm-up, then cosine decay over the planned epochs) and gradient
+    /// clipping. Its fields sit at the top level of the serialised config.
+    #[serde(flatten)]
+    pub optimizer: OptimizerConfig,
     /// Share of the rows held out for validation (early stopping); 0 trains on all rows and
     /// stops on the training ELBO.
     pub validation_fraction: f64,
@@ -50,11 +45,7 @@ impl Default for TrainConfig {
             epochs: 300,
             batch_size: 64,
             min_steps_per_epoch: 50,
-            learning_rate: 3e-3,
-            warmup_steps: 50,
-            final_lr_fraction: 0.05,
-            weight_decay: 0.0,
-            max_grad_norm: 10.0,
+            optimizer: OptimizerConfig::default(),
             validation_fraction: 0.2,
             validation_paths: 4,
             patience: 30,
@@ -89,22 +80,7 @@ impl TrainConfig {
                 "use at least 1 step per epoch",
             ));
         }
-        check_positive("learning_rate", self.learning_rate)?;
-        if !(self.final_lr_fraction > 0.0 && self.final_lr_fraction <= 1.0) {
-            return Err(Error::config(
-                "final_lr_fraction",
-                self.final_lr_fraction,
-                "must lie in (0, 1]",
-            ));
-        }
-        if !(self.weight_decay >= 0.0 && self.weight_decay.is_finite()) {
-            return Err(Error::config(
-                "weight_decay",
-                self.weight_decay,
-                "must be finite and >= 0",
-            ));
-        }
-        check_positive("max_grad_norm", self.max_grad_norm)?;
+        self.optimizer.validate()?;
         if !(0.0..1.0).contains(&self.validation_fraction) {
             return Err(Error::config(
                 "validation_fraction",
@@ -130,20 +106,5 @@ impl TrainConfig {
             check_positive("time_budget_secs", t)?;
         }
         Ok(())
-    }
-
-    /// Learning rate at optimiser step `step` (0-based) of `total` planned steps: linear
-    /// warm-up, then cosine decay to `final_lr_fraction` of the peak (Loshchilov & Hutter,
-    /// *SGDR*, ICLR 2017, cosine annealing).
-    pub fn learning_rate_at(&self, step: u64, total: u64) -> f64 {
-        let peak = self.learning_rate;
-        let w = self.warmup_steps as u64;
-        if step < w {
-            return peak * (step + 1) as f64 / w as f64;
-        }
-        let span = total.saturating_sub(w).max(1) as f64;
-        let p = ((step - w) as f64 / span).min(1.0);
-        let lo = peak * self.final_lr_fraction;
-        lo + 0.5 * (peak - lo) * (1.0 + (std::f64::consts::PI * p).cos())
     }
 }

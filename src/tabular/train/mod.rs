@@ -4,30 +4,100 @@ mod config;
 pub(crate) mod history;
 mod observer;
 mod state;
+mod stop;
 
 pub use config::TrainConfig;
 pub use history::{EpochRecord, History};
 pub use observer::{Observer, StepInfo};
-pub use state::{Termination, TrainReport, TrainState};
+pub use state::{TrainReport, TrainState};
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use candle_core::{Device, Tensor};
 use rand::seq::SliceRandom;
 
 use crate::error::{Error, Result};
-use crate::nn::optim::{AdamW, AdamWConfig};
+use crate::nn::descent::gradient_step;
+use crate::nn::optim::AdamW;
 use crate::nn::params::sorted_vars;
+use crate::nn::recovery::{restore, snapshot, GoodPoint, RecoveryState, Snapshot};
+use crate::nn::termination::Termination;
+use crate::sde::objective::FreeEnergyValues;
 use crate::tabular::fitted::TabularModel;
 use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory};
 use crate::tabular::scaler::Standardizer;
 use crate::tabular::split::split_rows;
 use crate::tabular::table::Table;
 use crate::util::rng::{generator, streams};
-use crate::util::stack::run_deep;
+use stop::StopRule;
 
-type Snapshot = Vec<(String, Tensor)>;
+/// The epoch in progress: its minibatches, where it is, and the point non-finite steps go
+/// back to.
+#[derive(Debug)]
+struct EpochRun {
+    minibatches: Vec<Vec<usize>>,
+    next: usize,
+    good: GoodPoint,
+    sums: Sums,
+    started: Instant,
+    lr: f64,
+}
+
+/// Running sums of an epoch's applied steps.
+#[derive(Debug, Default)]
+struct Sums {
+    loss: f64,
+    control_cost: f64,
+    reconstruction: f64,
+    grad_norm: f64,
+    count: usize,
+}
+
+impl Sums {
+    fn add(&mut self, v: &FreeEnergyValues, grad_norm: f64) {
+        self.loss += v.loss;
+        self.control_cost += v.control_cost;
+        self.reconstruction += v.terminal_cost;
+        self.grad_norm += grad_norm;
+        self.count += 1;
+    }
+
+    /// Mean training ELBO per row (NaN when no step was applied).
+    fn mean_elbo(&self) -> f64 {
+        if self.count > 0 {
+            -self.loss / self.count as f64
+        } else {
+            f64::NAN
+        }
+    }
+
+    fn record(
+        &self,
+        state: &TrainState,
+        train_elbo: f64,
+        val_elbo: Option<f64>,
+        learning_rate: f64,
+        seconds: f64,
+    ) -> EpochRecord {
+        let c = self.count.max(1) as f64;
+        EpochRecord {
+            epoch: state.epoch,
+            step: state.step,
+            train_elbo,
+            val_elbo,
+            control_cost: self.control_cost / c,
+            reconstruction: self.reconstruction / c,
+            learning_rate,
+            grad_norm: self.grad_norm / c,
+            seconds,
+        }
+    }
+}
+
+fn no_epoch() -> Error {
+    Error::Training("no epoch is in progress".into())
+}
 
 /// Standardised training and validation rows of `table` for the seeded split of `cfg`.
 fn standardised_split(
@@ -51,7 +121,7 @@ fn standardised_split(
 ///
 /// # Example
 /// ```
-/// use neural_sde::{LatentConfig, Table, TrainConfig, Trainer};
+/// use neural_sde::{EvalOptions, LatentConfig, Table, TrainConfig, Trainer};
 /// // A tiny synthetic table (demo data, not a check).
 /// let rows: Vec<Vec<f64>> = (0..80).map(|i| { let x = i as f64 / 40.0 - 1.0; vec![x, x * x + 0.1 * (i % 7) as f64] }).collect();
 /// let table = Table::new(vec!["x".into(), "y".into()], rows)?;
@@ -60,7 +130,7 @@ fn standardised_split(
 /// let report = trainer.fit()?;
 /// assert_eq!(report.epochs, 2);
 /// let model = trainer.into_model();
-/// let eval = model.evaluate(&table, 8, 0)?;
+/// let eval = model.evaluate(&table, EvalOptions::new(8, 0))?;
 /// assert!(eval.loglik_per_row >= eval.elbo_per_row - 1.0);
 /// # Ok::<(), neural_sde::Error>(())
 /// ```
@@ -73,6 +143,10 @@ pub struct Trainer {
     state: TrainState,
     best: Snapshot,
     observers: Vec<Box<dyn Observer>>,
+    /// Started when the trainer is made and at each [`Trainer::fit`]: the time budget's clock.
+    clock: Instant,
+    epoch_run: Option<EpochRun>,
+    periodic: Option<(usize, PathBuf)>,
 }
 
 impl std::fmt::Debug for Trainer {
@@ -99,26 +173,6 @@ fn fingerprint(table: &Table) -> u64 {
         eat(v.to_bits());
     }
     h
-}
-
-fn snapshot(model: &LatentModel) -> Result<Snapshot> {
-    sorted_vars(model.varmap())?
-        .into_iter()
-        .map(|(n, v)| Ok((n, v.as_tensor().copy()?)))
-        .collect()
-}
-
-fn restore(model: &LatentModel, snap: &Snapshot) -> Result<()> {
-    let vars = sorted_vars(model.varmap())?;
-    for ((name, var), (sname, t)) in vars.iter().zip(snap) {
-        if name != sname {
-            return Err(Error::Training(format!(
-                "snapshot holds {sname} where the model has {name}"
-            )));
-        }
-        var.set(t)?;
-    }
-    Ok(())
 }
 
 impl Trainer {
@@ -175,8 +229,8 @@ impl Trainer {
         let (train_rows, val_rows) = standardised_split(table, &scaler, &train_cfg)?;
         let model = LatentModel::build(&model_cfg, table.n_cols(), train_cfg.seed, prior)?;
         model.init_from_data(&train_rows)?;
-        let optimizer = AdamW::new(model.varmap(), Self::adam_cfg(&train_cfg))?;
-        let best = snapshot(&model)?;
+        let optimizer = AdamW::new(model.varmap(), train_cfg.optimizer.adamw.clone())?;
+        let best = snapshot(model.varmap())?;
         let state = TrainState {
             epoch: 0,
             step: 0,
@@ -185,11 +239,11 @@ impl Trainer {
             best_elbo: None,
             best_epoch: 0,
             epochs_since_best: 0,
-            failures: 0,
-            lr_scale: 1.0,
+            recovery: RecoveryState::default(),
             finished: None,
             table_rows: table.n_rows(),
             table_fingerprint: fingerprint(table),
+            seconds: 0.0,
         };
         let mut trainer = Self {
             model: TabularModel {
@@ -205,6 +259,9 @@ impl Trainer {
             state,
             best,
             observers: Vec::new(),
+            clock: Instant::now(),
+            epoch_run: None,
+            periodic: None,
         };
         // The initial model is the rows' Gaussian fit: its ELBO is the bar to beat, so
         // early stopping never keeps weights worse than the starting point.
@@ -218,14 +275,6 @@ impl Trainer {
             trainer.state.best_elbo = Some(initial);
         }
         Ok(trainer)
-    }
-
-    fn adam_cfg(c: &TrainConfig) -> AdamWConfig {
-        AdamWConfig {
-            learning_rate: c.learning_rate,
-            weight_decay: c.weight_decay,
-            ..AdamWConfig::default()
-        }
     }
 
     /// Continues training from a checkpoint written by [`Trainer::save`], on the same table.
@@ -308,7 +357,7 @@ impl Trainer {
             });
         }
         let (train_rows, val_rows) = standardised_split(table, &model.scaler, &train_cfg)?;
-        let mut optimizer = AdamW::new(model.model.varmap(), Self::adam_cfg(&train_cfg))?;
+        let mut optimizer = AdamW::new(model.model.varmap(), train_cfg.optimizer.adamw.clone())?;
         optimizer.load_state(&moments, optimizer_steps)?;
         Ok(Self {
             model,
@@ -319,6 +368,9 @@ impl Trainer {
             state,
             best,
             observers: Vec::new(),
+            clock: Instant::now(),
+            epoch_run: None,
+            periodic: None,
         })
     }
 
@@ -332,9 +384,17 @@ impl Trainer {
         &self.train_cfg
     }
 
-    /// Sets the time budget of the remaining training (for instance after resuming).
-    pub fn set_time_budget(&mut self, seconds: Option<f64>) {
+    /// Sets the time budget of each later [`Trainer::fit`] call (for instance after
+    /// resuming).
+    ///
+    /// # Errors
+    /// [`Error::InvalidConfig`] for a budget that is not finite and positive.
+    pub fn set_time_budget(&mut self, seconds: Option<f64>) -> Result<()> {
+        if let Some(t) = seconds {
+            crate::error::check_positive("time_budget_secs", t)?;
+        }
         self.train_cfg.time_budget_secs = seconds;
+        Ok(())
     }
 
     /// Sets the planned number of epochs (for instance to train longer after resuming).
@@ -366,7 +426,7 @@ impl Trainer {
     /// # Errors
     /// [`Error::Candle`] if the weights cannot be copied.
     pub fn restore_best(&mut self) -> Result<()> {
-        restore(&self.model.model, &self.best)
+        restore(self.model.model.varmap(), &self.best)
     }
 
     /// Ends training and returns the model (with the weights it currently has).
@@ -404,163 +464,196 @@ impl Trainer {
         Ok(sum / n as f64)
     }
 
-    /// Runs one epoch (or what the time budget allows of it) and records it.
+    /// Runs one optimiser step on the next minibatch, starting an epoch first if none is in
+    /// progress (the epoch's minibatch order is drawn then). Returns the epoch's record when
+    /// this step ended an epoch: its last minibatch ran, the time budget of this run is spent,
+    /// or an observer asked to stop. Non-finite steps are not applied: the weights and
+    /// optimiser go back to the epoch's start and the learning rate is halved.
+    ///
+    /// Checkpoints are taken between epochs: [`Trainer::save`] in the middle of one is an
+    /// error.
     ///
     /// # Errors
-    /// [`Error::Training`] after too many non-finite steps (the best weights are restored
-    /// first); errors raised by observers.
-    pub fn run_epoch(&mut self, started: Instant) -> Result<EpochRecord> {
-        let t0 = Instant::now();
+    /// [`Error::Training`] after more than `max_failures` non-finite steps (the best weights
+    /// are restored first); errors raised by observers.
+    pub fn step(&mut self) -> Result<Option<EpochRecord>> {
+        if self.epoch_run.is_none() {
+            self.epoch_run = Some(self.begin_epoch()?);
+        }
+        if let Some(why) = StopRule(&self.train_cfg).before_step(self.clock.elapsed().as_secs_f64())
+        {
+            self.state.finished = Some(why);
+            return self.end_epoch().map(Some);
+        }
+        let planned = self.planned_steps();
+        let run = self.epoch_run.as_mut().ok_or_else(no_epoch)?;
+        let batch = run.next;
+        let batches = run.minibatches.len();
+        let idx = std::mem::take(&mut run.minibatches[batch]);
+        run.next += 1;
         let d = self.model.columns.len();
-        let n = self.train_rows.len() / d;
+        let lr = self
+            .train_cfg
+            .optimizer
+            .learning_rate_at(self.state.step, planned)
+            * self.state.recovery.lr_scale;
+        run.lr = lr;
+        self.state.step += 1;
+        let mut rows = Vec::with_capacity(idx.len() * d);
+        for &i in &idx {
+            rows.extend_from_slice(&self.train_rows[i * d..(i + 1) * d]);
+        }
+        let model = &self.model.model;
+        let y = Tensor::from_vec(rows, (idx.len(), d), &Device::Cpu)?.to_dtype(model.dtype())?;
+        let noise_rng = &mut self.state.noise_rng;
+        let outcome = gradient_step(
+            &mut self.optimizer,
+            lr,
+            self.train_cfg.optimizer.max_grad_norm,
+            move || {
+                let fe = model.free_energy(&y, noise_rng)?;
+                let v = fe.values()?;
+                Ok((fe.loss, v))
+            },
+        );
+        match outcome {
+            Ok((v, stats)) => {
+                run.sums.add(&v, stats.grad_norm);
+                let info = StepInfo {
+                    epoch: self.state.epoch + 1,
+                    epochs: self.train_cfg.epochs,
+                    batch: batch + 1,
+                    batches,
+                    loss: v.loss,
+                    elapsed: self.clock.elapsed().as_secs_f64(),
+                };
+                for o in &mut self.observers {
+                    if o.on_step(&info)?.is_break() {
+                        self.state.finished = Some(Termination::Requested);
+                    }
+                }
+            }
+            Err(Error::NonFinite { what, detail }) => {
+                let recovered = self.state.recovery.recover(
+                    &run.good,
+                    self.model.model.varmap(),
+                    &mut self.optimizer,
+                    self.train_cfg.max_failures,
+                    (&what, &detail),
+                );
+                if let Err(e) = recovered {
+                    self.epoch_run = None;
+                    self.restore_best()?;
+                    return Err(Error::Training(format!(
+                        "{e}; stopped and kept the best weights (epoch {}). Lower the learning rate or standardise unusual columns",
+                        self.state.best_epoch
+                    )));
+                }
+            }
+            Err(e) => return Err(e),
+        }
+        if batch + 1 == batches || self.state.finished.is_some() {
+            return self.end_epoch().map(Some);
+        }
+        Ok(None)
+    }
+
+    /// Draws the epoch's minibatches and records the point non-finite steps go back to.
+    fn begin_epoch(&mut self) -> Result<EpochRun> {
+        let n = self.train_rows.len() / self.model.columns.len();
         let (passes, batches) = self.epoch_shape();
-        let bsz = self.train_cfg.batch_size;
         let mut minibatches: Vec<Vec<usize>> = Vec::with_capacity(batches);
         for _ in 0..passes {
             let mut order: Vec<usize> = (0..n).collect();
             order.shuffle(&mut self.state.data_rng);
-            minibatches.extend(order.chunks(bsz).map(<[usize]>::to_vec));
+            minibatches.extend(
+                order
+                    .chunks(self.train_cfg.batch_size)
+                    .map(<[usize]>::to_vec),
+            );
         }
-        let total = self.planned_steps();
-        let dev = Device::Cpu;
-        let dtype = self.model.model.dtype();
-        let latent = self.model.model.latent_dim();
-        let epoch_start = snapshot(&self.model.model)?;
-        let epoch_opt = (self.optimizer.state_tensors(), self.optimizer.steps());
-        let (mut sum_loss, mut sum_cost, mut sum_rec, mut sum_gn, mut count) =
-            (0.0, 0.0, 0.0, 0.0, 0usize);
-        let mut lr = self.optimizer.learning_rate();
-        for (bi, idx) in minibatches.iter().enumerate() {
-            if let Some(budget) = self.train_cfg.time_budget_secs {
-                if started.elapsed().as_secs_f64() > budget {
-                    self.state.finished = Some(Termination::TimeBudget);
-                    break;
-                }
-            }
-            lr = self.train_cfg.learning_rate_at(self.state.step, total) * self.state.lr_scale;
-            self.optimizer.set_learning_rate(lr);
-            self.state.step += 1;
-            let mut rows = Vec::with_capacity(idx.len() * d);
-            for &i in idx.iter() {
-                rows.extend_from_slice(&self.train_rows[i * d..(i + 1) * d]);
-            }
-            let y = Tensor::from_vec(rows, (idx.len(), d), &dev)?.to_dtype(dtype)?;
-            let noise = self.model.model.config().solver.sample_noise(
-                &mut self.state.noise_rng,
-                idx.len(),
-                latent,
-                dtype,
-                &dev,
-            )?;
-            let model = &self.model.model;
-            let optimizer = &mut self.optimizer;
-            let clip = self.train_cfg.max_grad_norm;
-            let outcome = run_deep(
-                move || -> Result<(crate::sde::objective::FreeEnergyValues, f64)> {
-                    let fe = model.free_energy(&y, &noise)?;
-                    let v = fe.values()?;
-                    let grads = fe.loss.backward()?;
-                    let stats = optimizer.step(&grads, Some(clip))?;
-                    Ok((v, stats.grad_norm))
-                },
-            )?;
-            match outcome {
-                Ok((v, gn)) => {
-                    sum_loss += v.loss;
-                    sum_cost += v.control_cost;
-                    sum_rec += v.terminal_cost;
-                    sum_gn += gn;
-                    count += 1;
-                    let info = StepInfo {
-                        epoch: self.state.epoch + 1,
-                        epochs: self.train_cfg.epochs,
-                        batch: bi + 1,
-                        batches,
-                        loss: v.loss,
-                        elapsed: started.elapsed().as_secs_f64(),
-                    };
-                    for o in &mut self.observers {
-                        o.on_step(&info)?;
-                    }
-                }
-                Err(Error::NonFinite { what, detail }) => {
-                    self.state.failures += 1;
-                    restore(&self.model.model, &epoch_start)?;
-                    let moments = epoch_opt.0.iter().cloned().collect();
-                    self.optimizer.load_state(&moments, epoch_opt.1)?;
-                    self.state.lr_scale *= 0.5;
-                    if self.state.failures > self.train_cfg.max_failures {
-                        restore(&self.model.model, &self.best)?;
-                        return Err(Error::Training(format!(
-                            "{} non-finite steps (last: {what}: {detail}); stopped and kept the best weights (epoch {}). Lower the learning rate or standardise unusual columns",
-                            self.state.failures, self.state.best_epoch
-                        )));
-                    }
-                }
-                Err(e) => return Err(e),
-            }
-        }
+        Ok(EpochRun {
+            minibatches,
+            next: 0,
+            good: GoodPoint::take(self.model.model.varmap(), &self.optimizer)?,
+            sums: Sums::default(),
+            started: Instant::now(),
+            lr: self.optimizer.learning_rate(),
+        })
+    }
+
+    /// Closes the epoch in progress: validation ELBO, best weights, the stop rule, the
+    /// record, observers and the periodic checkpoint.
+    fn end_epoch(&mut self) -> Result<EpochRecord> {
+        let run = self.epoch_run.take().ok_or_else(no_epoch)?;
         self.state.epoch += 1;
-        let train_elbo = if count > 0 {
-            -sum_loss / count as f64
-        } else {
-            f64::NAN
-        };
+        let train_elbo = run.sums.mean_elbo();
         let val_elbo = if self.val_rows.is_empty() {
             None
         } else {
             Some(self.elbo_of(&self.val_rows)?)
         };
         let score = val_elbo.unwrap_or(train_elbo);
-        let improved = score.is_finite()
-            && self
-                .state
-                .best_elbo
-                .is_none_or(|b| score > b + self.train_cfg.min_improvement);
-        if improved {
+        let rule = StopRule(&self.train_cfg);
+        if rule.improves(&self.state, score) {
             self.state.best_elbo = Some(score);
             self.state.best_epoch = self.state.epoch;
             self.state.epochs_since_best = 0;
-            self.best = snapshot(&self.model.model)?;
+            self.best = snapshot(self.model.model.varmap())?;
         } else {
             self.state.epochs_since_best += 1;
-            if self.state.epochs_since_best >= self.train_cfg.patience
-                && self.state.finished.is_none()
-            {
-                self.state.finished = Some(Termination::EarlyStopped);
-            }
         }
-        if self.state.epoch >= self.train_cfg.epochs && self.state.finished.is_none() {
-            self.state.finished = Some(Termination::MaxEpochs);
+        if self.state.finished.is_none() {
+            self.state.finished = rule.after_epoch(&self.state);
         }
-        let c = count.max(1) as f64;
-        let record = EpochRecord {
-            epoch: self.state.epoch,
-            step: self.state.step,
-            train_elbo,
-            val_elbo,
-            control_cost: sum_cost / c,
-            reconstruction: sum_rec / c,
-            learning_rate: lr,
-            grad_norm: sum_gn / c,
-            seconds: t0.elapsed().as_secs_f64(),
-        };
+        let seconds = run.started.elapsed().as_secs_f64();
+        self.state.seconds += seconds;
+        let record = run
+            .sums
+            .record(&self.state, train_elbo, val_elbo, run.lr, seconds);
         self.model.history.epochs.push(record.clone());
         for o in &mut self.observers {
-            o.on_epoch(&record)?;
+            if o.on_epoch(&record)?.is_break() && self.state.finished.is_none() {
+                self.state.finished = Some(Termination::Requested);
+            }
+        }
+        if let Some((every, path)) = &self.periodic {
+            if self.state.epoch.is_multiple_of(*every) {
+                self.save(path)?;
+            }
         }
         Ok(record)
     }
 
-    /// Trains until the epochs run out, early stopping triggers or the time budget is spent,
-    /// then restores the best weights.
+    /// Runs the rest of the epoch in progress, or a whole new one.
     ///
     /// # Errors
-    /// As [`Trainer::run_epoch`].
+    /// As [`Trainer::step`].
+    pub fn run_epoch(&mut self) -> Result<EpochRecord> {
+        loop {
+            if let Some(record) = self.step()? {
+                return Ok(record);
+            }
+        }
+    }
+
+    /// Trains until the stop rule ends training (the planned epochs, patience, the time
+    /// budget of this call, or an observer's request), then restores the best weights. A
+    /// trainer stopped by its time budget or by an observer continues when `fit` is called
+    /// again (each call has the full budget).
+    ///
+    /// # Errors
+    /// As [`Trainer::step`].
     pub fn fit(&mut self) -> Result<TrainReport> {
-        let started = Instant::now();
+        self.clock = Instant::now();
+        if matches!(
+            self.state.finished,
+            Some(Termination::TimeBudget | Termination::Requested)
+        ) {
+            self.state.finished = None;
+        }
         while self.state.finished.is_none() {
-            self.run_epoch(started)?;
+            self.step()?;
         }
         self.restore_best()?;
         Ok(TrainReport {
@@ -568,8 +661,25 @@ impl Trainer {
             best_epoch: self.state.best_epoch,
             best_elbo: self.state.best_elbo,
             termination: self.state.finished.unwrap_or(Termination::MaxEpochs),
-            seconds: started.elapsed().as_secs_f64(),
+            seconds: self.clock.elapsed().as_secs_f64(),
         })
+    }
+
+    /// Writes a checkpoint every `epochs` epochs to `path` (atomically, replacing the last
+    /// one), so a long fit that is killed can be resumed with [`Trainer::resume`].
+    ///
+    /// # Errors
+    /// [`Error::InvalidConfig`] for `epochs == 0`.
+    pub fn checkpoint_every(&mut self, epochs: usize, path: impl Into<PathBuf>) -> Result<()> {
+        if epochs == 0 {
+            return Err(Error::config(
+                "checkpoint_every",
+                0,
+                "write a checkpoint every 1 or more epochs",
+            ));
+        }
+        self.periodic = Some((epochs, path.into()));
+        Ok(())
     }
 
     /// Writes a checkpoint (weights, optimiser moments, best weights, configuration, scaler,
@@ -578,6 +688,12 @@ impl Trainer {
     /// # Errors
     /// [`Error::Io`] or [`Error::Checkpoint`] if it cannot be written.
     pub fn save(&self, path: impl AsRef<Path>) -> Result<()> {
+        if self.epoch_run.is_some() {
+            return Err(Error::Training(format!(
+                "cannot save {} in the middle of an epoch; save after Trainer::run_epoch or Trainer::fit, or when Trainer::step returns the epoch's record",
+                path.as_ref().display()
+            )));
+        }
         let mut tensors = self.model.tensors()?;
         for (n, m) in self.optimizer.state_tensors() {
             tensors.push((format!("optim.{n}"), m));

@@ -1,5 +1,7 @@
 //! Progress reporting: the library prints nothing; observers receive plain numbers.
 
+use std::ops::ControlFlow;
+
 use super::history::EpochRecord;
 use crate::error::Result;
 
@@ -20,15 +22,18 @@ pub struct StepInfo {
     pub elapsed: f64,
 }
 
-/// Receives training progress. Every method has a no-op default; an `Err` stops training
-/// with that error.
+/// Receives training progress. Every method has a default that lets training continue.
+///
+/// Return `Ok(ControlFlow::Break(()))` to stop training normally: the epoch ends there, the
+/// best weights are kept and the report says [`crate::Termination::Requested`]. An `Err`
+/// stops training with that error.
 pub trait Observer: Send {
     /// After every optimiser step.
-    fn on_step(&mut self, _info: &StepInfo) -> Result<()> {
-        Ok(())
+    fn on_step(&mut self, _info: &StepInfo) -> Result<ControlFlow<()>> {
+        Ok(ControlFlow::Continue(()))
     }
     /// After every epoch.
-    fn on_epoch(&mut self, _record: &EpochRecord) -> Result<()> {
-        Ok(())
+    fn on_epoch(&mut self, _record: &EpochRecord) -> Result<ControlFlow<()>> {
+        Ok(ControlFlow::Continue(()))
     }
 }

@@ -2,19 +2,9 @@
 
 use serde::{Deserialize, Serialize};
 
+use crate::nn::recovery::RecoveryState;
+use crate::nn::termination::Termination;
 use crate::util::rng::Generator;
-
-/// Why training ended.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum Termination {
-    /// All planned epochs ran.
-    MaxEpochs,
-    /// The validation ELBO stopped improving for `patience` epochs.
-    EarlyStopped,
-    /// The time budget ran out.
-    TimeBudget,
-}
 
 /// Everything needed to continue training exactly where it stopped.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -33,16 +23,19 @@ pub struct TrainState {
     pub best_epoch: usize,
     /// Epochs since the best ELBO.
     pub epochs_since_best: usize,
-    /// Non-finite steps so far.
-    pub failures: usize,
-    /// Multiplier of the scheduled learning rate (halved at each failure).
-    pub lr_scale: f64,
+    /// Non-finite steps so far and the learning-rate scale they left (flattened: the fields
+    /// `failures` and `lr_scale`).
+    #[serde(flatten)]
+    pub recovery: RecoveryState,
     /// Set when training has ended.
     pub finished: Option<Termination>,
     /// Number of rows of the table trained on.
     pub table_rows: usize,
     /// Fingerprint of the table's values (to refuse resuming on other data).
     pub table_fingerprint: u64,
+    /// Seconds of training so far, over every run (the only timing in the state).
+    #[serde(default)]
+    pub seconds: f64,
 }
 
 /// Summary returned by [`crate::Trainer::fit`].
@@ -58,4 +51,18 @@ pub struct TrainReport {
     pub termination: Termination,
     /// Seconds spent in this run.
     pub seconds: f64,
+}
+
+impl std::fmt::Display for TrainReport {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "{} after {} epochs in {:.1} s; kept epoch {}",
+            self.termination, self.epochs, self.seconds, self.best_epoch
+        )?;
+        if let Some(b) = self.best_elbo {
+            write!(f, " (ELBO {b:.4} per row, standardised units)")?;
+        }
+        Ok(())
+    }
 }
