@@ -1,6 +1,6 @@
 //! The noise scale σ of the additive-noise SDE `dX = (b + u) dt + σ dW`.
 
-use candle_core::{DType, Device, Tensor};
+use candle_core::{DType, Tensor};
 
 use crate::error::{check_positive, Error, Result};
 use crate::nn::params::{Param, ParamBuilder};
@@ -29,15 +29,6 @@ impl std::fmt::Debug for Diffusion {
             Kind::Learned(t) => write!(f, "Diffusion::Learned({:?})", t.dims()),
         }
     }
-}
-
-/// σ in the form the solver consumes.
-#[derive(Debug, Clone)]
-pub(crate) enum Sigma {
-    /// One scalar for all dimensions.
-    Scalar(f64),
-    /// A `(1, d)` row, possibly carrying gradients.
-    Row(Tensor),
 }
 
 impl Diffusion {
@@ -112,49 +103,53 @@ impl Diffusion {
         Ok(v)
     }
 
-    /// σ as the solver uses it, checked against the state dimension.
-    pub(crate) fn resolve(&self, dim: usize, dtype: DType, dev: &Device) -> Result<Sigma> {
-        match &self.kind {
-            Kind::Constant(s) => Ok(Sigma::Scalar(*s)),
-            Kind::PerDim(v) => {
-                if v.len() != dim {
-                    return Err(Error::shape(
-                        "sigma (one value per dimension)",
-                        dim,
-                        v.len(),
-                    ));
-                }
-                Ok(Sigma::Row(
-                    Tensor::from_vec(v.clone(), (1, dim), dev)?.to_dtype(dtype)?,
-                ))
-            }
+    /// Checks that σ fits states of dimension `dim` (once, where a simulation starts).
+    pub(crate) fn check_dim(&self, dim: usize) -> Result<()> {
+        let n = match &self.kind {
+            Kind::Constant(_) => return Ok(()),
+            Kind::PerDim(v) => v.len(),
             Kind::Learned(t) => {
                 if t.dims() != [1, dim] {
                     return Err(Error::shape("learned log_sigma", [1, dim], t.dims()));
                 }
-                Ok(Sigma::Row(t.to_dtype(dtype)?.exp()?))
+                dim
             }
+        };
+        if n != dim {
+            return Err(Error::shape("sigma (one value per dimension)", dim, n));
+        }
+        Ok(())
+    }
+
+    /// σ as a `(1, d)` row in `like`'s dtype and device (carrying gradients when learned).
+    fn row(&self, like: &Tensor) -> candle_core::Result<Tensor> {
+        match &self.kind {
+            Kind::Constant(s) => {
+                Tensor::full(*s, (1, like.dim(1)?), like.device())?.to_dtype(like.dtype())
+            }
+            Kind::PerDim(v) => {
+                Tensor::from_vec(v.clone(), (1, v.len()), like.device())?.to_dtype(like.dtype())
+            }
+            Kind::Learned(t) => t.to_dtype(like.dtype())?.exp(),
         }
     }
-}
 
-impl Sigma {
     /// `x · σ` (per dimension).
-    pub(crate) fn mul(&self, x: &Tensor) -> candle_core::Result<Tensor> {
-        match self {
+    pub(crate) fn scale(&self, x: &Tensor) -> candle_core::Result<Tensor> {
+        match &self.kind {
             // σ = 1 (the default) needs neither a copy nor a graph node on the solver's path.
-            Sigma::Scalar(s) if *s == 1.0 => Ok(x.clone()),
-            Sigma::Scalar(s) => x.affine(*s, 0.0),
-            Sigma::Row(r) => x.broadcast_mul(r),
+            Kind::Constant(s) if *s == 1.0 => Ok(x.clone()),
+            Kind::Constant(s) => x.affine(*s, 0.0),
+            _ => x.broadcast_mul(&self.row(x)?),
         }
     }
 
     /// `x / σ` (per dimension).
-    pub(crate) fn div(&self, x: &Tensor) -> candle_core::Result<Tensor> {
-        match self {
-            Sigma::Scalar(s) if *s == 1.0 => Ok(x.clone()),
-            Sigma::Scalar(s) => x.affine(1.0 / *s, 0.0),
-            Sigma::Row(r) => x.broadcast_div(r),
+    pub(crate) fn unscale(&self, x: &Tensor) -> candle_core::Result<Tensor> {
+        match &self.kind {
+            Kind::Constant(s) if *s == 1.0 => Ok(x.clone()),
+            Kind::Constant(s) => x.affine(1.0 / *s, 0.0),
+            _ => x.broadcast_div(&self.row(x)?),
         }
     }
 }

@@ -48,6 +48,7 @@ pub fn simulate(
         .dims2()
         .map_err(|_| Error::shape("x0", "(batch, d)", x0.dims()))?;
     check_inputs(sde, cfg, batch, dim, noise, context)?;
+    sde.diffusion().check_dim(dim)?;
     match (cfg.kernel, fused::try_simulate(sde, cfg, x0, noise, context)?) {
         (Kernel::Generic, _) => {}
         (_, Ok(paths)) => return Ok(paths),
@@ -60,14 +61,14 @@ pub fn simulate(
         }
         (Kernel::Auto, Err(_)) => {}
     }
-    let sigma = sde.diffusion().resolve(dim, x0.dtype(), x0.device())?;
+    let sigma = sde.diffusion();
     let mut st = step::State::new(x0.clone(), cfg.keep_path);
     let h = cfg.step();
     for k in 0..cfg.n_steps {
         let t = k as f64 * h;
         let dw = &noise.dw()[k];
         match cfg.scheme {
-            Scheme::EulerMaruyama => step::euler_maruyama(&mut st, sde, &sigma, t, h, dw, context)?,
+            Scheme::EulerMaruyama => step::euler_maruyama(&mut st, sde, sigma, t, h, dw, context)?,
             Scheme::Sra1 => {
                 let dz = noise
                     .dz()
@@ -80,7 +81,7 @@ pub fn simulate(
                     })?
                     .get(k)
                     .ok_or_else(|| Error::shape("number of ΔZ increments", cfg.n_steps, k))?;
-                step::sra1(&mut st, sde, &sigma, t, h, dw, dz, context)?
+                step::sra1(&mut st, sde, sigma, t, h, dw, dz, context)?
             }
         }
     }

@@ -4,7 +4,7 @@ use candle_core::Tensor;
 
 use super::system::{Paths, Sde};
 use crate::error::{Error, Result};
-use crate::sde::diffusion::Sigma;
+use crate::sde::diffusion::Diffusion;
 
 /// Running state of a batch of paths.
 pub(super) struct State {
@@ -64,7 +64,7 @@ impl State {
 /// Evaluates `b + u` at `(x, t)`; returns the drift and `u/σ` (when there is a control).
 fn drift_at(
     sde: &Sde<'_>,
-    sigma: &Sigma,
+    sigma: &Diffusion,
     x: &Tensor,
     t: f64,
     context: Option<&Tensor>,
@@ -86,7 +86,7 @@ fn drift_at(
     let (u, v) = match sde.control() {
         Some(c) => {
             let u = check("control", c.forward(x, t, context)?)?;
-            let v = sigma.div(&u)?;
+            let v = sigma.unscale(&u)?;
             (Some(u), Some(v))
         }
         None => (None, None),
@@ -104,7 +104,7 @@ fn drift_at(
 pub(super) fn euler_maruyama(
     st: &mut State,
     sde: &Sde<'_>,
-    sigma: &Sigma,
+    sigma: &Diffusion,
     t: f64,
     h: f64,
     dw: &Tensor,
@@ -115,7 +115,7 @@ pub(super) fn euler_maruyama(
         accumulate(&mut st.cost, v.sqr()?)?;
         accumulate(&mut st.stoch, (v * dw)?)?;
     }
-    let mut x = (&st.x + sigma.mul(dw)?)?;
+    let mut x = (&st.x + sigma.scale(dw)?)?;
     if let Some(f) = f {
         x = (x + f.affine(h, 0.0)?)?;
     }
@@ -133,7 +133,7 @@ pub(super) fn euler_maruyama(
 pub(super) fn sra1(
     st: &mut State,
     sde: &Sde<'_>,
-    sigma: &Sigma,
+    sigma: &Diffusion,
     t: f64,
     h: f64,
     dw: &Tensor,
@@ -141,7 +141,7 @@ pub(super) fn sra1(
     context: Option<&Tensor>,
 ) -> Result<()> {
     let (f1, v1) = drift_at(sde, sigma, &st.x, t, context)?;
-    let mut stage = (&st.x + sigma.mul(dz)?.affine(1.5 / h, 0.0)?)?;
+    let mut stage = (&st.x + sigma.scale(dz)?.affine(1.5 / h, 0.0)?)?;
     if let Some(f1) = &f1 {
         stage = (stage + f1.affine(0.75 * h, 0.0)?)?;
     }
@@ -151,7 +151,7 @@ pub(super) fn sra1(
         accumulate(&mut st.cost, c)?;
         accumulate(&mut st.stoch, (v1 * dw)?)?;
     }
-    let mut x = (&st.x + sigma.mul(dw)?)?;
+    let mut x = (&st.x + sigma.scale(dw)?)?;
     if let (Some(f1), Some(f2)) = (f1, f2) {
         let f = (f1.affine(h / 3.0, 0.0)? + f2.affine(2.0 * h / 3.0, 0.0)?)?;
         x = (x + f)?;
