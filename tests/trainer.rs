@@ -205,11 +205,22 @@ fn early_stopping_and_validation() {
 
 #[test]
 fn generation_from_the_initial_model_follows_the_gaussian_fit() {
+    initial_model_is_the_gaussian_fit(DecoderKind::Linear);
+}
+
+#[test]
+fn the_mlp_decoder_also_starts_at_the_gaussian_fit() {
+    // Its residual network starts at zero, so the initial model is the same Gaussian.
+    initial_model_is_the_gaussian_fit(DecoderKind::Mlp);
+}
+
+fn initial_model_is_the_gaussian_fit(kind: DecoderKind) {
     // The untrained model is the ML Gaussian of its training rows (see
     // `LatentModel::init_from_data`); its samples must have that mean and covariance
     // (sample moments within 4 standard errors; Gaussian sampling theory).
     let t = table(400);
-    let (m, c) = small();
+    let (mut m, c) = small();
+    m.decoder.kind = kind;
     let model = Trainer::new(
         &t,
         m,
