@@ -47,6 +47,13 @@ pub fn split_mod5(t: &Table) -> (Table, Table) {
 /// full-covariance Gaussian fitted on `train` (closed form: sample mean, covariance with
 /// divisor n; e.g. Bishop 2006, *Pattern Recognition and Machine Learning*, §2.3.4).
 pub fn gaussian_test_loglik_per_dim(train: &Table, test: &Table) -> f64 {
+    let rows = gaussian_test_loglik_rows(train, test);
+    rows.iter().sum::<f64>() / rows.len() as f64 / train.n_cols() as f64
+}
+
+/// Held-out log-density of each row of `test` (data units) under the maximum-likelihood
+/// full-covariance Gaussian fitted on `train` (same closed form).
+pub fn gaussian_test_loglik_rows(train: &Table, test: &Table) -> Vec<f64> {
     let d = train.n_cols();
     let n = train.n_rows() as f64;
     let mut mean = vec![0.0; d];
@@ -68,7 +75,7 @@ pub fn gaussian_test_loglik_per_dim(train: &Table, test: &Table) -> f64 {
     let prec = linalg::cholesky_inverse(&l, d);
     let logdet = linalg::log_det_from_cholesky(&l, d);
     let c = -0.5 * (d as f64 * (2.0 * std::f64::consts::PI).ln() + logdet);
-    let mut total = 0.0;
+    let mut out = Vec::with_capacity(test.n_rows());
     for i in 0..test.n_rows() {
         let r = test.row(i);
         let diff: Vec<f64> = (0..d).map(|j| r[j] - mean[j]).collect();
@@ -78,9 +85,9 @@ pub fn gaussian_test_loglik_per_dim(train: &Table, test: &Table) -> f64 {
                 q += diff[a] * prec[a * d + b] * diff[b];
             }
         }
-        total += c - 0.5 * q;
+        out.push(c - 0.5 * q);
     }
-    total / test.n_rows() as f64 / d as f64
+    out
 }
 
 /// Σ_j log sd_j / d of the training rows (population sd), to convert standardised
