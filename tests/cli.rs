@@ -252,3 +252,41 @@ fn every_command_explains_its_options_and_defaults() {
         }
     }
 }
+
+#[test]
+fn a_killed_fit_resumes_from_its_periodic_checkpoint() {
+    let d = dir("periodic");
+    let model = d.join("m.safetensors");
+    let mut child = bin()
+        .args(["fit", "--demo", "--epochs", "1000", "--checkpoint-every", "2"])
+        .arg("--out")
+        .arg(&model)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+    let t0 = std::time::Instant::now();
+    while !model.exists() {
+        assert!(t0.elapsed().as_secs() < 120, "no periodic checkpoint appeared");
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    std::thread::sleep(std::time::Duration::from_millis(300));
+    child.kill().unwrap();
+    child.wait().unwrap();
+    // What the kill left is a complete checkpoint at an even epoch.
+    let table = neural_sde::builtin_demo().unwrap();
+    let at = neural_sde::Trainer::resume(&model, &table).unwrap();
+    let e = at.state().epoch;
+    assert!(e >= 2 && e % 2 == 0, "epoch {e}");
+    let resumed = d.join("resumed.safetensors");
+    let o = run(bin()
+        .args(["fit", "--demo", "--epochs", &(e + 2).to_string(), "--resume"])
+        .arg(&model)
+        .arg("--out")
+        .arg(&resumed));
+    assert!(o.status.success(), "{}", stderr(&o));
+    let done = neural_sde::Trainer::resume(&resumed, &table).unwrap();
+    let h = &done.history().epochs;
+    assert_eq!(h.len(), e + 2);
+    assert_eq!(&h[..e], &at.history().epochs[..]);
+}
