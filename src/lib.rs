@@ -115,7 +115,6 @@ pub use tabular::model::{
     Decoder, DecoderConfig, DecoderKind, LatentConfig, LatentModel, PathTerms, PriorFactory,
 };
 pub use tabular::scaler::Standardizer;
-pub use tabular::split::split_rows;
 pub use tabular::summary::{inspect_checkpoint, CheckpointSummary};
 pub use tabular::table::Table;
 pub use tabular::train::{

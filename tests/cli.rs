@@ -258,7 +258,14 @@ fn a_killed_fit_resumes_from_its_periodic_checkpoint() {
     let d = dir("periodic");
     let model = d.join("m.safetensors");
     let mut child = bin()
-        .args(["fit", "--demo", "--epochs", "1000", "--checkpoint-every", "2"])
+        .args([
+            "fit",
+            "--demo",
+            "--epochs",
+            "1000",
+            "--checkpoint-every",
+            "2",
+        ])
         .arg("--out")
         .arg(&model)
         .stdout(std::process::Stdio::null())
@@ -267,7 +274,10 @@ fn a_killed_fit_resumes_from_its_periodic_checkpoint() {
         .unwrap();
     let t0 = std::time::Instant::now();
     while !model.exists() {
-        assert!(t0.elapsed().as_secs() < 120, "no periodic checkpoint appeared");
+        assert!(
+            t0.elapsed().as_secs() < 120,
+            "no periodic checkpoint appeared"
+        );
         std::thread::sleep(std::time::Duration::from_millis(20));
     }
     std::thread::sleep(std::time::Duration::from_millis(300));
@@ -277,10 +287,16 @@ fn a_killed_fit_resumes_from_its_periodic_checkpoint() {
     let table = neural_sde::builtin_demo().unwrap();
     let at = neural_sde::Trainer::resume(&model, &table).unwrap();
     let e = at.state().epoch;
-    assert!(e >= 2 && e % 2 == 0, "epoch {e}");
+    assert!(e >= 2 && e.is_multiple_of(2), "epoch {e}");
     let resumed = d.join("resumed.safetensors");
     let o = run(bin()
-        .args(["fit", "--demo", "--epochs", &(e + 2).to_string(), "--resume"])
+        .args([
+            "fit",
+            "--demo",
+            "--epochs",
+            &(e + 2).to_string(),
+            "--resume",
+        ])
         .arg(&model)
         .arg("--out")
         .arg(&resumed));

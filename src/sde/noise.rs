@@ -20,9 +20,9 @@ use crate::util::rng::standard_normals;
 /// # Example
 /// ```
 /// use candle_core::{DType, Device};
-/// use neural_sde::{generator, BrownianIncrements};
-/// let mut rng = generator(7, 0);
-/// let noise = BrownianIncrements::sample(&mut rng, 4, 2, 10, 1.0, false, DType::F64, &Device::Cpu)?;
+/// use neural_sde::{generator, SolverConfig};
+/// let grid = SolverConfig { n_steps: 10, ..Default::default() };
+/// let noise = grid.sample_noise(&mut generator(7, 0), 4, 2, DType::F64, &Device::Cpu)?;
 /// assert_eq!(noise.n_steps(), 10);
 /// assert_eq!(noise.dw()[0].dims(), &[4, 2]);
 /// # Ok::<(), neural_sde::Error>(())
@@ -36,12 +36,10 @@ pub struct BrownianIncrements {
 
 impl BrownianIncrements {
     /// Draws increments for `batch` paths in dimension `dim` over `n_steps` steps of size
-    /// `t_end / n_steps`; with `with_area`, also the integrals `ΔZ`.
-    ///
-    /// # Errors
-    /// [`Error::InvalidConfig`] for zero sizes or a non-positive horizon.
+    /// `t_end / n_steps`; with `with_area`, also the integrals `ΔZ`. Users draw through
+    /// [`crate::SolverConfig::sample_noise`], which supplies the grid and scheme.
     #[allow(clippy::too_many_arguments)]
-    pub fn sample(
+    pub(crate) fn sample(
         rng: &mut dyn RngCore,
         batch: usize,
         dim: usize,

@@ -11,7 +11,7 @@ use crate::util::rng::generator;
 /// # Errors
 /// [`Error::InvalidConfig`] for a fraction outside `[0, 1)` or a split that leaves no
 /// training rows.
-pub fn split_rows(n: usize, fraction: f64, seed: u64) -> Result<(Vec<usize>, Vec<usize>)> {
+pub(crate) fn split_rows(n: usize, fraction: f64, seed: u64) -> Result<(Vec<usize>, Vec<usize>)> {
     if !(0.0..1.0).contains(&fraction) {
         return Err(Error::config(
             "validation_fraction",

@@ -77,7 +77,7 @@ impl SolverConfig {
     /// Draws fresh noise for this grid and scheme from `rng`.
     ///
     /// # Errors
-    /// As [`BrownianIncrements::sample`].
+    /// [`Error::InvalidConfig`] for zero sizes.
     pub fn sample_noise(
         &self,
         rng: &mut dyn rand::RngCore,
