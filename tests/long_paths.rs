@@ -21,8 +21,11 @@ fn thousand_step_paths_train() {
     let report = s.fit().unwrap();
     assert_eq!(report.steps, 3);
     assert!(s.history().iter().all(|r| r.loss.is_finite()));
-    let est = s.estimate(EstimateOptions::new(64, 0)).unwrap();
-    assert!(est.log_z.is_finite());
+    // The target is a normalised density (log Z = 0) and the importance weights are
+    // unbiased for Z under any control (Euler–Maruyama is exact for the reference Brownian
+    // motion; see the sampler module docs): 4 delta-method SE plus 0.05 nats of log-bias.
+    let est = s.estimate(EstimateOptions::new(512, 0)).unwrap();
+    assert!(est.log_z.abs() < 4.0 * est.log_z_se + 0.05, "{est}");
 }
 
 /// A user's prior drift `b(z) = w ⊙ z` whose parameter comes from the builder.
