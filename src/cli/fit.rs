@@ -7,7 +7,8 @@ use neural_sde::{
     AdamWConfig, LatentConfig, MlpConfig, OptimizerConfig, SolverConfig, TrainConfig, Trainer,
 };
 
-use super::{check_output, fraction, load_table, positive_f64, positive_usize, Failure};
+use super::files::Files;
+use super::{fraction, load_table, positive_f64, positive_usize, Failure};
 
 #[derive(Debug, Args)]
 pub struct FitArgs {
@@ -69,12 +70,13 @@ pub struct FitArgs {
 }
 
 pub fn run(a: FitArgs) -> Result<(), Failure> {
-    check_output(&a.out, "--out")?;
-    for (p, opt) in [(&a.history, "--history"), (&a.plot, "--plot")] {
-        if let Some(p) = p {
-            check_output(p, opt)?;
-        }
-    }
+    Files::default()
+        .input("data file", a.data.as_deref())
+        .input("checkpoint to resume", a.resume.as_deref())
+        .output("--out", Some(&a.out))
+        .output("--history", a.history.as_deref())
+        .output("--plot", a.plot.as_deref())
+        .check()?;
     let table = load_table(a.data.as_deref(), a.demo, a.columns.as_deref())?;
     let mut trainer = match &a.resume {
         Some(ck) => {

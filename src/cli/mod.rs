@@ -1,12 +1,13 @@
 //! Argument parsing and dispatch; every failure becomes one line on stderr.
 
 mod evaluate;
+mod files;
 mod fit;
 mod inspect;
 mod progress;
 mod sample;
 
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use clap::{Parser, Subcommand};
 
@@ -54,12 +55,7 @@ impl From<neural_sde::Error> for Failure {
             _ => 2,
         };
         // candle appends a backtrace when RUST_BACKTRACE is set: keep the first line only.
-        let message = e
-            .to_string()
-            .lines()
-            .next()
-            .unwrap_or("unknown error")
-            .to_string();
+        let message = first_line(&e.to_string()).to_string();
         Self { code, message }
     }
 }
@@ -93,32 +89,39 @@ pub fn run() -> i32 {
     match result {
         Ok(()) => 0,
         Err(f) => {
-            eprintln!("error: {}", f.message);
+            // A safety net: messages clip what they echo, but never print megabytes.
+            let mut m = f.message;
+            if m.len() > 4 * ECHO {
+                m = clip(&m);
+            }
+            eprintln!("error: {m}");
             f.code
         }
     }
 }
 
-/// Checks that `path` can be created: its folder exists and it is not a folder itself.
-pub fn check_output(path: &Path, option: &str) -> Result<(), Failure> {
-    if path.is_dir() {
-        return Err(Failure::input(format!(
-            "{option} {}: is a folder; give a file name",
-            path.display()
-        )));
+/// At most this many characters of a name, path or cell are echoed in a message.
+const ECHO: usize = 200;
+
+/// `text` cut to [`ECHO`] characters (with the count of the rest).
+pub fn clip(text: &str) -> String {
+    let n = text.chars().count();
+    if n <= ECHO {
+        text.to_string()
+    } else {
+        let head: String = text.chars().take(ECHO).collect();
+        format!("{head}… ({} more characters)", n - ECHO)
     }
-    let dir = match path.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-        _ => PathBuf::from("."),
-    };
-    if !dir.is_dir() {
-        return Err(Failure::input(format!(
-            "{option} {}: the folder {} does not exist; create it first",
-            path.display(),
-            dir.display()
-        )));
-    }
-    Ok(())
+}
+
+/// A path as shown in messages (clipped).
+pub fn shown(path: &Path) -> String {
+    clip(&path.display().to_string())
+}
+
+/// The first line of `text`.
+pub fn first_line(text: &str) -> &str {
+    text.lines().next().unwrap_or("unknown error")
 }
 
 /// Loads a CSV table or the demo table, keeping `columns` when given.

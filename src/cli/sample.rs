@@ -5,7 +5,8 @@ use std::path::PathBuf;
 use clap::Args;
 use neural_sde::TabularModel;
 
-use super::{check_output, load_table, positive_usize, Failure};
+use super::files::Files;
+use super::{load_table, positive_usize, Failure};
 
 #[derive(Debug, Args)]
 pub struct SampleArgs {
@@ -32,10 +33,12 @@ pub struct SampleArgs {
 }
 
 pub fn run(a: SampleArgs) -> Result<(), Failure> {
-    check_output(&a.out, "--out")?;
-    if let Some(p) = &a.plot {
-        check_output(p, "--plot")?;
-    }
+    Files::default()
+        .input("model", Some(&a.model))
+        .input("data file", a.data.as_deref())
+        .output("--out", Some(&a.out))
+        .output("--plot", a.plot.as_deref())
+        .check()?;
     let model = TabularModel::load(&a.model)?;
     let reference = if a.data.is_some() || a.demo {
         Some(load_table(
@@ -46,11 +49,11 @@ pub fn run(a: SampleArgs) -> Result<(), Failure> {
     } else {
         None
     };
-    let rows = model.generate(a.rows, a.seed)?;
-    rows.write_csv(&a.out)?;
+    // Streamed to the file; the plot shows the first rows.
+    let first = model.generate_csv(&a.out, a.rows, a.seed)?;
     if let Some(p) = &a.plot {
-        neural_sde::plot::pairs_svg(&rows, reference.as_ref(), 4, p)?;
+        neural_sde::plot::pairs_svg(&first, reference.as_ref(), 4, p)?;
     }
-    println!("{} rows written to {}", rows.n_rows(), a.out.display());
+    println!("{} rows written to {}", a.rows, a.out.display());
     Ok(())
 }

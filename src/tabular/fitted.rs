@@ -174,6 +174,38 @@ impl TabularModel {
         }
         Table::new(self.columns.clone(), out)
     }
+
+    /// Generates `rows` new rows like [`TabularModel::generate`] (the same rows for the same
+    /// seed) and streams them to a CSV file at `path` (atomically), so memory does not grow
+    /// with `rows`. Returns the first rows, at most [`TabularModel::KEPT_ROWS`] (for plots).
+    ///
+    /// # Errors
+    /// As [`TabularModel::generate`]; [`Error::Io`] or [`Error::Data`] if the file cannot
+    /// be written (nothing is left at `path` then).
+    pub fn generate_csv(&self, path: impl AsRef<Path>, rows: usize, seed: u64) -> Result<Table> {
+        if rows == 0 {
+            return Err(Error::config("rows", 0, "generate at least 1 row"));
+        }
+        let mut file = crate::util::fs::AtomicFile::create(path.as_ref())?;
+        crate::tabular::table::write_csv_header(&mut file, &self.columns)?;
+        let mut rng = generator(seed, streams::EVAL);
+        let d = self.columns.len();
+        let mut kept = Vec::new();
+        let mut left = rows;
+        while left > 0 {
+            let n = left.min(4096);
+            let y = self.scaler.inverse(&self.model.generate(n, &mut rng)?);
+            crate::tabular::table::write_csv_rows(&mut file, &y, d)?;
+            let room = (Self::KEPT_ROWS - kept.len()).min(n);
+            kept.extend(y.chunks_exact(d).take(room).map(<[f64]>::to_vec));
+            left -= n;
+        }
+        file.commit()?;
+        Table::new(self.columns.clone(), kept)
+    }
+
+    /// Rows [`TabularModel::generate_csv`] returns at most.
+    pub const KEPT_ROWS: usize = 10_000;
 }
 
 /// Value of the `format` entry of a tabular model's checkpoint.

@@ -84,22 +84,10 @@ impl Table {
     /// # Errors
     /// [`Error::Io`] if the file cannot be written.
     pub fn write_csv(&self, path: impl AsRef<Path>) -> Result<()> {
-        let mut out = String::with_capacity(self.values.len() * 12);
-        out.push_str(
-            &self
-                .columns
-                .iter()
-                .map(|c| quote(c))
-                .collect::<Vec<_>>()
-                .join(","),
-        );
-        out.push('\n');
-        for i in 0..self.n_rows {
-            let row: Vec<String> = self.row(i).iter().map(|v| format!("{v}")).collect();
-            out.push_str(&row.join(","));
-            out.push('\n');
-        }
-        crate::util::fs::write_atomic(path.as_ref(), out.as_bytes())
+        let mut f = crate::util::fs::AtomicFile::create(path.as_ref())?;
+        write_csv_header(&mut f, &self.columns)?;
+        write_csv_rows(&mut f, &self.values, self.columns.len())?;
+        f.commit()
     }
 
     /// Column names.
@@ -227,4 +215,36 @@ pub(crate) fn column_indices(
             })
         })
         .collect()
+}
+
+/// Writes the CSV header line of `columns`.
+pub(crate) fn write_csv_header(out: &mut impl std::io::Write, columns: &[String]) -> Result<()> {
+    let line = columns
+        .iter()
+        .map(|c| quote(c))
+        .collect::<Vec<_>>()
+        .join(",");
+    writeln!(out, "{line}")?;
+    Ok(())
+}
+
+/// Writes row-major `values` with `cols` columns as CSV lines (shortest round-trip decimal
+/// form of each number).
+pub(crate) fn write_csv_rows(
+    out: &mut impl std::io::Write,
+    values: &[f64],
+    cols: usize,
+) -> Result<()> {
+    for row in values.chunks_exact(cols.max(1)) {
+        let mut first = true;
+        for v in row {
+            if !first {
+                out.write_all(b",")?;
+            }
+            write!(out, "{v}")?;
+            first = false;
+        }
+        out.write_all(b"\n")?;
+    }
+    Ok(())
 }
