@@ -259,14 +259,19 @@ fn bad_files_are_errors_that_say_what_is_wrong() {
 
     let p = d.join("version.safetensors");
     rewrite(&good, &p, |meta, _| {
-        meta.insert("format_version".into(), "99".into());
+        let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+        c["format_version"] = "99".into();
+        meta.insert("neural-sde".into(), c.to_string());
     });
     let e = TabularModel::load(&p).unwrap_err().to_string();
-    assert!(e.contains("\"99\"") && e.contains("version 1"), "{e}");
+    assert!(
+        e.contains("\"99\"") && e.contains("versions 1 and 2"),
+        "{e}"
+    );
 
     let p = d.join("foreign.safetensors");
     rewrite(&good, &p, |meta, _| {
-        meta.remove("format");
+        meta.remove("neural-sde");
     });
     assert!(TabularModel::load(&p)
         .unwrap_err()
@@ -332,10 +337,50 @@ fn other_safetensors_readers_read_the_file() {
     assert!(names.contains(&"best.decoder.linear.weight"));
     let (_, md) = safetensors::SafeTensors::read_metadata(&bytes).unwrap();
     let meta = md.metadata().clone().unwrap();
-    assert_eq!(meta["format"], "neural-sde-model");
-    let header: serde_json::Value = serde_json::from_str(&meta["header"]).unwrap();
+    let container: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+    assert_eq!(container["format"], "neural-sde-model");
+    assert_eq!(container["format_version"], "2");
+    let header = &container["header"];
     assert_eq!(header["columns"], serde_json::json!(["a", "b", "c"]));
     assert!(header["state"]["data_rng"].is_object());
     let loaded = candle_core::safetensors::load(&p, &candle_core::Device::Cpu).unwrap();
     assert_eq!(loaded["decoder.linear.weight"].dims(), &[3, 3]);
+}
+
+#[test]
+fn files_of_format_version_1_still_load_and_non_finite_weights_are_never_written() {
+    let t = table();
+    let (m, c) = cfg();
+    let tr = Trainer::new(&t, m, TrainConfig { epochs: 1, ..c }).unwrap();
+    let d = dir("legacy");
+    let p = d.join("v2.safetensors");
+    tr.save(&p).unwrap();
+    // Version 1 kept format, format_version, crate_version and header as four entries.
+    let v1 = d.join("v1.safetensors");
+    rewrite(&p, &v1, |meta, _| {
+        let c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+        meta.clear();
+        meta.insert("format".into(), c["format"].as_str().unwrap().into());
+        meta.insert("format_version".into(), "1".into());
+        meta.insert("crate_version".into(), "0.1.0".into());
+        meta.insert("header".into(), c["header"].to_string());
+    });
+    let a = TabularModel::load(&p).unwrap();
+    let b = TabularModel::load(&v1).unwrap();
+    assert_eq!(weights(&a), weights(&b));
+    assert_eq!(
+        Trainer::resume(&v1, &t).unwrap().state(),
+        Trainer::resume(&p, &t).unwrap().state()
+    );
+    // A NaN weight: saving refuses and writes nothing.
+    let var = &sorted_vars(tr.model().latent().varmap()).unwrap()[0].1;
+    let nan = (var.as_tensor() * f64::NAN).unwrap();
+    var.set(&nan).unwrap();
+    let out = d.join("nan.safetensors");
+    let e = tr.save(&out).unwrap_err();
+    assert!(matches!(e, Error::NonFinite { .. }), "{e}");
+    assert!(!out.exists());
+    let e = tr.model().save(&out).unwrap_err();
+    assert!(matches!(e, Error::NonFinite { .. }), "{e}");
+    assert!(!out.exists());
 }

@@ -35,9 +35,16 @@ pub struct FitArgs {
     /// Euler–Maruyama steps of the latent path on [0, 1].
     #[arg(long, default_value_t = 20, value_parser = positive_usize)]
     steps: usize,
-    /// Maximum number of epochs (each at least 50 optimiser steps).
-    #[arg(long, default_value_t = 300, value_parser = positive_usize)]
-    epochs: usize,
+    /// Epochs to train (each at least 50 optimiser steps); the learning-rate schedule is
+    /// planned over them. With --resume: the epoch to stop at [default: 300; with --resume,
+    /// the checkpoint's plan]. Resumed runs keep the checkpoint's schedule; epochs past its
+    /// plan run at the final learning rate.
+    #[arg(long, value_parser = positive_usize)]
+    epochs: Option<usize>,
+    /// End this run after this many epochs in all, keeping the schedule planned over
+    /// --epochs; continue later with --resume (the result is then the same as one run).
+    #[arg(long, value_parser = positive_usize)]
+    stop_after: Option<usize>,
     /// Rows per minibatch.
     #[arg(long, default_value_t = 64, value_parser = positive_usize)]
     batch_size: usize,
@@ -81,7 +88,15 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
     let mut trainer = match &a.resume {
         Some(ck) => {
             let mut t = Trainer::resume(ck, &table)?;
-            t.set_epochs(a.epochs.max(t.state().epoch));
+            let plan = t.planned_epochs();
+            let until = a.stop_after.or(a.epochs).unwrap_or(plan);
+            if until > plan {
+                eprintln!(
+                    "note: the checkpoint's learning-rate schedule is planned over {plan} epochs; epochs {} to {until} run at its final learning rate",
+                    plan + 1
+                );
+            }
+            t.set_epochs(until.max(t.state().epoch));
             t
         }
         None => {
@@ -101,7 +116,7 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
                 ..LatentConfig::default()
             };
             let train = TrainConfig {
-                epochs: a.epochs,
+                epochs: a.epochs.unwrap_or(300),
                 batch_size: a.batch_size,
                 optimizer: OptimizerConfig {
                     adamw: AdamWConfig {
@@ -114,7 +129,11 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
                 validation_fraction: a.validation_fraction,
                 ..TrainConfig::default()
             };
-            Trainer::new(&table, model, train)?
+            let mut t = Trainer::new(&table, model, train)?;
+            if let Some(k) = a.stop_after {
+                t.set_epochs(k);
+            }
+            t
         }
     };
     trainer.set_time_budget(Some(a.time_budget))?;

@@ -1,19 +1,27 @@
 //! The checkpoint file format: one plain `.safetensors` file holding named tensors and, in
-//! its metadata, `format` (what kind of object the file holds), `format_version`,
-//! `crate_version` and `header` (JSON). Models and trainers decide which tensors and which
-//! header fields they store; this module only writes, reads and checks the container.
+//! its metadata, one entry `neural-sde` whose value is a JSON object with `format` (what
+//! kind of object the file holds), `format_version`, `crate_version` and `header` (the
+//! object's own JSON). Models and trainers decide which tensors and which header fields they
+//! store; this module only writes, reads and checks the container.
+//!
+//! One metadata entry keeps the file's bytes deterministic (safetensors writes its metadata
+//! map in hash order); the same training run gives the same file apart from the header's
+//! `timing` field. Files of format version 1 (four metadata entries) are still read.
 
 use std::collections::HashMap;
 use std::path::Path;
 
 use candle_core::{DType, Device, Tensor};
 use serde::de::DeserializeOwned;
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, Result};
 
-/// Value of the `format_version` metadata entry written by this version.
-pub(crate) const FORMAT_VERSION: &str = "1";
+/// Value of `format_version` written by this version.
+pub(crate) const FORMAT_VERSION: &str = "2";
+
+/// The metadata entry that holds the container's JSON.
+const ENTRY: &str = "neural-sde";
 
 fn bad(path: &Path, reason: String) -> Error {
     Error::Checkpoint {
@@ -22,25 +30,63 @@ fn bad(path: &Path, reason: String) -> Error {
     }
 }
 
-/// Writes `tensors` and `header` atomically to `path` as a file of kind `format`.
+/// The container's JSON (the `neural-sde` metadata entry).
+#[derive(Serialize, Deserialize)]
+struct Container<H> {
+    format: String,
+    format_version: String,
+    crate_version: String,
+    header: H,
+}
+
+/// Writes `tensors` and `header` atomically to `path` as a file of kind `format`, after
+/// checking that it could be read back: every tensor value is finite and `parses_back`
+/// (which parses the header text as its readers do) succeeds. Nothing is written when a
+/// check fails.
 ///
 /// # Errors
-/// [`Error::Checkpoint`] if the tensors cannot be serialised; [`Error::Io`] if the file
-/// cannot be written.
+/// [`Error::NonFinite`] naming a tensor with a NaN or infinite value; [`Error::Checkpoint`]
+/// if the header would not parse back or the tensors cannot be serialised; [`Error::Io`] if
+/// the file cannot be written.
 pub(crate) fn write(
     path: &Path,
     format: &str,
     tensors: Vec<(String, Tensor)>,
     header: &impl Serialize,
+    parses_back: impl Fn(&str) -> serde_json::Result<()>,
 ) -> Result<()> {
-    let mut meta = HashMap::new();
-    meta.insert("format".to_string(), format.to_string());
-    meta.insert("format_version".to_string(), FORMAT_VERSION.to_string());
-    meta.insert(
-        "crate_version".to_string(),
-        env!("CARGO_PKG_VERSION").to_string(),
-    );
-    meta.insert("header".to_string(), serde_json::to_string(header)?);
+    for (name, t) in &tensors {
+        let bad_values = t
+            .flatten_all()?
+            .to_dtype(DType::F64)?
+            .to_vec1::<f64>()?
+            .iter()
+            .filter(|v| !v.is_finite())
+            .count();
+        if bad_values > 0 {
+            return Err(Error::NonFinite {
+                what: format!("tensor {name}"),
+                detail: format!(
+                    "{bad_values} values are NaN or infinite; {} was not written (lower the learning rate, or resume from an earlier checkpoint)",
+                    path.display()
+                ),
+            });
+        }
+    }
+    let text = serde_json::to_string(header)?;
+    parses_back(&text).map_err(|e| {
+        bad(
+            path,
+            format!("not written: its header would not parse back ({e}); this is a bug, please report it"),
+        )
+    })?;
+    let container = Container {
+        format: format.to_string(),
+        format_version: FORMAT_VERSION.to_string(),
+        crate_version: env!("CARGO_PKG_VERSION").to_string(),
+        header: serde_json::value::RawValue::from_string(text)?,
+    };
+    let meta = HashMap::from([(ENTRY.to_string(), serde_json::to_string(&container)?)]);
     let bytes = safetensors::tensor::serialize(tensors, Some(meta))
         .map_err(|e| bad(path, format!("cannot serialise: {e}")))?;
     crate::util::fs::write_atomic(path, &bytes)
@@ -72,35 +118,53 @@ pub(crate) fn read_header<H: DeserializeOwned>(
             "no metadata: this safetensors file was not written by neural-sde".into(),
         )
     })?;
-    match meta.get("format").map(String::as_str) {
-        Some(f) if f == format => {}
-        other => {
+    let container: Container<Box<serde_json::value::RawValue>> = match meta.get(ENTRY) {
+        Some(text) => serde_json::from_str(text)
+            .map_err(|e| bad(path, format!("the header is not valid ({e})")))?,
+        None if !meta.contains_key("format") => {
             return Err(bad(
                 path,
-                format!(
-                "format is {other:?}, expected \"{format}\": this file was not written by neural-sde"
-            ),
+                "its metadata has no neural-sde entry: this file was not written by neural-sde"
+                    .into(),
             ))
         }
+        // Format version 1: the same fields as separate metadata entries.
+        None => Container {
+            format: meta.get("format").cloned().unwrap_or_default(),
+            format_version: meta.get("format_version").cloned().unwrap_or_default(),
+            crate_version: meta
+                .get("crate_version")
+                .cloned()
+                .unwrap_or_else(|| "unknown".into()),
+            header: serde_json::value::RawValue::from_string(
+                meta.get("header")
+                    .ok_or_else(|| bad(path, "the metadata has no `header` entry".into()))?
+                    .clone(),
+            )
+            .map_err(|e| bad(path, format!("the header is not valid ({e})")))?,
+        },
+    };
+    if container.format != format {
+        return Err(bad(
+            path,
+            format!(
+                "format is {:?}, expected \"{format}\": this file was not written by neural-sde as that kind of object",
+                crate::util::text::clip(&container.format)
+            ),
+        ));
     }
-    match meta.get("format_version").map(String::as_str) {
-        Some(FORMAT_VERSION) => {}
-        other => {
-            return Err(bad(path, format!(
-                "format version {other:?} is not supported (this build reads version {FORMAT_VERSION}); use a matching neural-sde version"
-            )))
-        }
+    if !["1", FORMAT_VERSION].contains(&container.format_version.as_str()) {
+        return Err(bad(
+            path,
+            format!(
+                "format version {:?} is not supported (this build reads versions 1 and {FORMAT_VERSION}); use a matching neural-sde version",
+                crate::util::text::clip(&container.format_version)
+            ),
+        ));
     }
-    let crate_version = meta
-        .get("crate_version")
-        .cloned()
-        .unwrap_or_else(|| "unknown".into());
-    let header: H = serde_json::from_str(
-        meta.get("header")
-            .ok_or_else(|| bad(path, "the metadata has no `header` entry".into()))?,
-    )
-    .map_err(|e| bad(path, format!("the header is not valid ({e})")))?;
-    Ok((bytes, crate_version, header))
+    let header: H = serde_json::from_str(container.header.get())
+        .map_err(|e| bad(path, format!("the header is not valid ({e})")))?;
+    Ok((bytes, container.crate_version, header))
 }
 
 /// Number of values in each tensor of `bytes`, by name (no tensor is decoded).
@@ -186,4 +250,9 @@ pub(crate) fn load_vars(
         var.set(t)?;
     }
     Ok(())
+}
+
+/// A `parses_back` check for [`write`]: the header parses as `H`.
+pub(crate) fn parses_as<H: DeserializeOwned>(text: &str) -> serde_json::Result<()> {
+    serde_json::from_str::<H>(text).map(|_| ())
 }

@@ -111,6 +111,8 @@ struct SamplerHeader {
     state: SamplerState,
     optimizer_steps: u64,
     history: Vec<SamplerRecord>,
+    /// The only wall-clock figure (seconds of training), apart from the rest.
+    timing: f64,
 }
 
 /// A learned control that transports `X_0 = 0` to an unnormalised target.
@@ -422,14 +424,23 @@ impl Sampler {
         for (n, m) in self.optimizer.state_tensors() {
             tensors.push((format!("optim.{n}"), m));
         }
+        let mut state = self.state.clone();
+        let timing = std::mem::take(&mut state.seconds);
         let header = SamplerHeader {
             dim: self.target.dim(),
             config: self.cfg.clone(),
-            state: self.state.clone(),
+            state,
+            timing,
             optimizer_steps: self.optimizer.steps(),
             history: self.history.clone(),
         };
-        crate::nn::checkpoint::write(path.as_ref(), FORMAT, tensors, &header)
+        crate::nn::checkpoint::write(
+            path.as_ref(),
+            FORMAT,
+            tensors,
+            &header,
+            crate::nn::checkpoint::parses_as::<SamplerHeader>,
+        )
     }
 
     /// Loads a sampler with the built-in control saved by [`Sampler::save`], ready to
@@ -513,6 +524,7 @@ impl Sampler {
             .load_state(&moments, header.optimizer_steps)
             .map_err(|e| bad(path, e.to_string()))?;
         s.state = header.state;
+        s.state.seconds = header.timing;
         s.history = header.history;
         Ok(s)
     }

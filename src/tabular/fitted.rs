@@ -13,7 +13,7 @@ use crate::tabular::evaluation::{EvalOptions, Evaluation};
 use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory};
 use crate::tabular::scaler::Standardizer;
 use crate::tabular::table::Table;
-use crate::tabular::train::history::History;
+use crate::tabular::train::history::{History, Timing};
 use crate::util::rng::{generator, streams};
 
 /// A latent-diffusion model of a table, with its standardisation and column names.
@@ -53,7 +53,13 @@ impl TabularModel {
     /// # Errors
     /// [`Error::Io`] or [`Error::Checkpoint`] if it cannot be written.
     pub fn save(&self, path: impl AsRef<Path>) -> Result<()> {
-        crate::nn::checkpoint::write(path.as_ref(), FORMAT, self.tensors()?, &self.header())
+        crate::nn::checkpoint::write(
+            path.as_ref(),
+            FORMAT,
+            self.tensors()?,
+            &self.header(),
+            crate::nn::checkpoint::parses_as::<ModelHeader>,
+        )
     }
 
     /// Loads a model saved by [`crate::Trainer::save`] or [`TabularModel::save`].
@@ -219,17 +225,22 @@ pub(crate) struct ModelHeader {
     pub columns: Vec<String>,
     pub scaler: Standardizer,
     pub history: History,
+    /// Every wall-clock time of the file (the rest of the header is deterministic).
+    #[serde(default)]
+    pub timing: Timing,
 }
 
 impl TabularModel {
     /// The model's header fields.
     pub(crate) fn header(&self) -> ModelHeader {
+        let (history, timing) = self.history.split_timing();
         ModelHeader {
             model_config: self.model.config().clone(),
             data_dim: self.model.data_dim(),
             columns: self.columns.clone(),
             scaler: self.scaler.clone(),
-            history: self.history.clone(),
+            history,
+            timing,
         }
     }
 
@@ -243,7 +254,8 @@ impl TabularModel {
 
     /// Reads a checkpoint: the model with its weights, and every tensor of the file (the
     /// trainer takes its own from them). Every tensor must belong to the model, as a weight,
-    /// an optimiser moment (`optim.m.`, `optim.v.`) or a best weight (`best.`).
+    /// an optimiser moment (`optim.m.`, `optim.v.`), a best weight (`best.`) or the weights
+    /// training had reached when they differ from the model's (`last.`).
     pub(crate) fn read(
         path: &Path,
         factory: Option<&PriorFactory>,
@@ -281,6 +293,7 @@ impl TabularModel {
                 .strip_prefix("optim.m.")
                 .or_else(|| name.strip_prefix("optim.v."))
                 .or_else(|| name.strip_prefix("best."))
+                .or_else(|| name.strip_prefix("last."))
                 .unwrap_or(name);
             if !vars.iter().any(|(n, _)| n == base) {
                 return Err(bad(format!(
@@ -288,11 +301,13 @@ impl TabularModel {
                 )));
             }
         }
+        let mut history = header.history;
+        history.merge_timing(&header.timing);
         let model = TabularModel {
             model,
             scaler: header.scaler,
             columns: header.columns,
-            history: header.history,
+            history,
         };
         Ok((model, file))
     }

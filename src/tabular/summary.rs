@@ -52,7 +52,9 @@ pub fn inspect_checkpoint(path: impl AsRef<Path>) -> Result<CheckpointSummary> {
         crate::nn::checkpoint::read_header(path, FORMAT)?;
     let parameters = crate::nn::checkpoint::tensor_sizes(path, &bytes)?
         .into_iter()
-        .filter(|(n, _)| !n.starts_with("optim.") && !n.starts_with("best."))
+        .filter(|(n, _)| {
+            !n.starts_with("optim.") && !n.starts_with("best.") && !n.starts_with("last.")
+        })
         .map(|(_, s)| s)
         .sum();
     Ok(CheckpointSummary {

@@ -6,3 +6,4 @@ pub(crate) mod linalg;
 pub(crate) mod precision;
 pub(crate) mod rng;
 pub(crate) mod stack;
+pub(crate) mod text;

@@ -13,7 +13,9 @@ pub struct EpochRecord {
     pub epoch: usize,
     /// Optimiser steps taken so far.
     pub step: u64,
-    /// Mean training ELBO per row over the epoch's minibatches.
+    /// Mean training ELBO per row over the epoch's minibatches (NaN when the epoch was cut
+    /// before its first step; stored as `null`).
+    #[serde(with = "crate::util::text::nan_as_null")]
     pub train_elbo: f64,
     /// Validation ELBO per row (`None` without validation rows).
     pub val_elbo: Option<f64>,
@@ -36,7 +38,41 @@ pub struct History {
     pub epochs: Vec<EpochRecord>,
 }
 
+/// Wall-clock timings, kept apart from everything else in a checkpoint header (its field
+/// `timing`), so that the same training gives the same header apart from this field.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub(crate) struct Timing {
+    /// Seconds of each epoch of the history.
+    pub epoch_seconds: Vec<f64>,
+    /// Seconds of training over every run (trainer checkpoints only).
+    pub training_seconds: Option<f64>,
+}
+
 impl History {
+    /// The history with every epoch's seconds set to 0, and those seconds.
+    pub(crate) fn split_timing(&self) -> (History, Timing) {
+        let mut h = self.clone();
+        let epoch_seconds = h
+            .epochs
+            .iter_mut()
+            .map(|r| std::mem::take(&mut r.seconds))
+            .collect();
+        let timing = Timing {
+            epoch_seconds,
+            training_seconds: None,
+        };
+        (h, timing)
+    }
+
+    /// Puts the seconds of `timing` back into the epochs (when there is one per epoch).
+    pub(crate) fn merge_timing(&mut self, timing: &Timing) {
+        if timing.epoch_seconds.len() == self.epochs.len() {
+            for (r, s) in self.epochs.iter_mut().zip(&timing.epoch_seconds) {
+                r.seconds = *s;
+            }
+        }
+    }
+
     /// CSV text with a header line.
     pub fn to_csv(&self) -> String {
         let mut s = String::from(

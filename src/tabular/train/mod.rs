@@ -147,6 +147,9 @@ pub struct Trainer {
     clock: Instant,
     epoch_run: Option<EpochRun>,
     periodic: Option<(usize, PathBuf)>,
+    /// The weights training had reached when [`Trainer::fit`] put the best ones in the
+    /// model: training continues from them, and checkpoints keep them (`last.*`).
+    last: Option<Snapshot>,
 }
 
 impl std::fmt::Debug for Trainer {
@@ -244,6 +247,7 @@ impl Trainer {
             table_rows: table.n_rows(),
             table_fingerprint: fingerprint(table),
             seconds: 0.0,
+            planned_steps: None,
         };
         let mut trainer = Self {
             model: TabularModel {
@@ -262,7 +266,9 @@ impl Trainer {
             clock: Instant::now(),
             epoch_run: None,
             periodic: None,
+            last: None,
         };
+        trainer.state.planned_steps = Some(trainer.planned_steps());
         // The initial model is the rows' Gaussian fit: its ELBO is the bar to beat, so
         // early stopping never keeps weights worse than the starting point.
         let rows = if trainer.val_rows.is_empty() {
@@ -302,36 +308,50 @@ impl Trainer {
         let (model, mut file) = TabularModel::read(path, prior)?;
         let (_, _, training): (_, _, TrainingHeader) =
             crate::nn::checkpoint::read_header(path, crate::tabular::fitted::FORMAT)?;
+        let (_, _, timing): (_, _, TimingPart) =
+            crate::nn::checkpoint::read_header(path, crate::tabular::fitted::FORMAT)?;
         let missing = || Error::Checkpoint {
             path: path.to_path_buf(),
             reason: "it holds a model but no training state; train a new model instead of resuming"
                 .into(),
         };
-        let (Some(train_cfg), Some(state)) = (training.train_config, training.state) else {
+        let (Some(train_cfg), Some(mut state)) = (training.train_config, training.state) else {
             return Err(missing());
         };
+        if let Some(t) = timing.timing.training_seconds {
+            state.seconds = t;
+        }
         let vars = sorted_vars(model.model.varmap())?;
         let mut moments = std::collections::HashMap::new();
         let mut best = Vec::with_capacity(vars.len());
+        let mut last = Vec::new();
         for (name, var) in &vars {
             for p in ["m", "v"] {
                 if let Some(t) = file.remove(&format!("optim.{p}.{name}")) {
                     moments.insert(format!("{p}.{name}"), t);
                 }
             }
-            if let Some(t) = file.remove(&format!("best.{name}")) {
-                if t.dims() != var.dims() {
-                    return Err(Error::Checkpoint {
-                        path: path.to_path_buf(),
-                        reason: format!(
-                            "tensor best.{name} has shape {:?}, expected {:?}",
-                            t.dims(),
-                            var.dims()
-                        ),
-                    });
+            for (prefix, into) in [("best", &mut best), ("last", &mut last)] {
+                if let Some(t) = file.remove(&format!("{prefix}.{name}")) {
+                    if t.dims() != var.dims() {
+                        return Err(Error::Checkpoint {
+                            path: path.to_path_buf(),
+                            reason: format!(
+                                "tensor {prefix}.{name} has shape {:?}, expected {:?}",
+                                t.dims(),
+                                var.dims()
+                            ),
+                        });
+                    }
+                    into.push((name.clone(), t));
                 }
-                best.push((name.clone(), t));
             }
+        }
+        if !last.is_empty() && last.len() != vars.len() {
+            return Err(Error::Checkpoint {
+                path: path.to_path_buf(),
+                reason: "the training state is incomplete (some last.* weights missing)".into(),
+            });
         }
         if moments.len() != 2 * vars.len() || best.len() != vars.len() {
             return Err(Error::Checkpoint {
@@ -371,6 +391,7 @@ impl Trainer {
             clock: Instant::now(),
             epoch_run: None,
             periodic: None,
+            last: (!last.is_empty()).then_some(last),
         })
     }
 
@@ -397,8 +418,11 @@ impl Trainer {
         Ok(())
     }
 
-    /// Sets the planned number of epochs (for instance to train longer after resuming).
-    /// Changing it changes the learning-rate schedule.
+    /// Sets the epoch after which training ends (for instance to train longer after
+    /// resuming). The learning-rate schedule keeps the plan it started with
+    /// ([`Trainer::planned_epochs`]), so `k` epochs, a checkpoint and a resumed run to `N`
+    /// give exactly the weights of `N` epochs in one run; epochs past the plan run at the
+    /// schedule's final learning rate.
     pub fn set_epochs(&mut self, epochs: usize) {
         self.train_cfg.epochs = epochs;
         if self.state.finished == Some(Termination::MaxEpochs) && epochs > self.state.epoch {
@@ -446,8 +470,17 @@ impl Trainer {
         self.epoch_shape().1
     }
 
+    /// Steps the schedule is planned over: stored when training started.
     fn planned_steps(&self) -> u64 {
-        (self.train_cfg.epochs * self.batches_per_epoch()) as u64
+        self.state
+            .planned_steps
+            .unwrap_or((self.train_cfg.epochs * self.batches_per_epoch()) as u64)
+    }
+
+    /// Epochs the learning-rate schedule is planned over (see [`TrainState::planned_steps`]).
+    pub fn planned_epochs(&self) -> usize {
+        let per = self.batches_per_epoch().max(1) as u64;
+        self.planned_steps().div_ceil(per) as usize
     }
 
     /// Mean ELBO per row of standardised `rows`, with fixed noise (the same every epoch).
@@ -477,6 +510,9 @@ impl Trainer {
     /// [`Error::Training`] after more than `max_failures` non-finite steps (the best weights
     /// are restored first); errors raised by observers.
     pub fn step(&mut self) -> Result<Option<EpochRecord>> {
+        if let Some(last) = self.last.take() {
+            restore(self.model.model.varmap(), &last)?;
+        }
         if self.epoch_run.is_none() {
             self.epoch_run = Some(self.begin_epoch()?);
         }
@@ -655,6 +691,9 @@ impl Trainer {
         while self.state.finished.is_none() {
             self.step()?;
         }
+        if self.last.is_none() && self.state.best_epoch != self.state.epoch {
+            self.last = Some(snapshot(self.model.model.varmap())?);
+        }
         self.restore_best()?;
         Ok(TrainReport {
             epochs: self.state.epoch,
@@ -701,19 +740,31 @@ impl Trainer {
         for (n, b) in &self.best {
             tensors.push((format!("best.{n}"), b.clone()));
         }
+        for (n, b) in self.last.iter().flatten() {
+            tensors.push((format!("last.{n}"), b.clone()));
+        }
+        let mut model = self.model.header();
+        let mut state = self.state.clone();
+        model.timing.training_seconds = Some(std::mem::take(&mut state.seconds));
         let header = CheckpointHeader {
-            model: self.model.header(),
+            model,
             training: TrainingHeader {
                 train_config: Some(self.train_cfg.clone()),
-                state: Some(self.state.clone()),
+                state: Some(state),
                 optimizer_steps: Some(self.optimizer.steps()),
             },
         };
+        use crate::nn::checkpoint::parses_as;
         crate::nn::checkpoint::write(
             path.as_ref(),
             crate::tabular::fitted::FORMAT,
             tensors,
             &header,
+            |text| {
+                parses_as::<crate::tabular::fitted::ModelHeader>(text)?;
+                parses_as::<TrainingHeader>(text)?;
+                parses_as::<TimingPart>(text)
+            },
         )
     }
 }
@@ -724,6 +775,13 @@ pub(crate) struct TrainingHeader {
     pub train_config: Option<TrainConfig>,
     pub state: Option<TrainState>,
     pub optimizer_steps: Option<u64>,
+}
+
+/// The timing field of a checkpoint header.
+#[derive(serde::Deserialize)]
+struct TimingPart {
+    #[serde(default)]
+    timing: crate::tabular::train::history::Timing,
 }
 
 /// The whole header of a training checkpoint: one flat JSON object.

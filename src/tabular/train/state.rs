@@ -36,6 +36,12 @@ pub struct TrainState {
     /// Seconds of training so far, over every run (the only timing in the state).
     #[serde(default)]
     pub seconds: f64,
+    /// Optimiser steps the learning-rate schedule is planned over, fixed when training
+    /// starts (`epochs × minibatches per epoch` of the first configuration), so that a
+    /// resumed run continues the same schedule. `None` in files written before it was
+    /// stored: then the configuration's epochs are used.
+    #[serde(default)]
+    pub planned_steps: Option<u64>,
 }
 
 /// Summary returned by [`crate::Trainer::fit`].

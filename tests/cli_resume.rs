@@ -1,0 +1,169 @@
+//! Exact resume and deterministic checkpoints, on the command line as a user runs them.
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn bin() -> Command {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_neural-sde"));
+    c.env("RAYON_NUM_THREADS", "1");
+    c
+}
+
+fn dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("neural-sde-resume-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+fn ok(o: Output) -> Output {
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    o
+}
+
+fn table(d: &Path) -> PathBuf {
+    let p = d.join("data.csv");
+    let body: String = (0..150)
+        .map(|i| {
+            let x = (i as f64 * 0.37).sin();
+            format!(
+                "{x},{},{}\n",
+                x * x + 0.1 * ((i * 7) % 5) as f64,
+                (i % 11) as f64 * 0.3
+            )
+        })
+        .collect();
+    std::fs::write(&p, format!("a,b,c\n{body}")).unwrap();
+    p
+}
+
+fn fit(data: &Path, out: &Path, extra: &[&str]) -> Output {
+    ok(bin()
+        .arg("fit")
+        .arg(data)
+        .args(["--batch-size", "32", "--out"])
+        .arg(out)
+        .args(extra)
+        .output()
+        .unwrap())
+}
+
+/// Every tensor's bytes by name, and the header with its `timing` field removed.
+fn contents(p: &Path) -> (BTreeMap<String, Vec<u8>>, serde_json::Value) {
+    let bytes = std::fs::read(p).unwrap();
+    let st = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+    let tensors = st
+        .tensors()
+        .into_iter()
+        .map(|(n, v)| (n, v.data().to_vec()))
+        .collect();
+    let (_, md) = safetensors::SafeTensors::read_metadata(&bytes).unwrap();
+    let meta = md.metadata().clone().unwrap();
+    assert_eq!(
+        meta.len(),
+        1,
+        "one metadata entry keeps the bytes deterministic"
+    );
+    let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+    let header = c["header"].as_object_mut().unwrap();
+    assert!(header.remove("timing").is_some(), "no timing field");
+    (tensors, c)
+}
+
+#[test]
+fn stopping_and_resuming_gives_the_model_of_one_run() {
+    let d = dir("exact");
+    let data = table(&d);
+    let full = d.join("full.safetensors");
+    fit(&data, &full, &["--epochs", "4"]);
+    // Two epochs of the same four-epoch plan, then resumed to its end.
+    let half = d.join("half.safetensors");
+    fit(&data, &half, &["--epochs", "4", "--stop-after", "2"]);
+    let resumed = d.join("resumed.safetensors");
+    ok(bin()
+        .arg("fit")
+        .arg(&data)
+        .arg("--resume")
+        .arg(&half)
+        .arg("--out")
+        .arg(&resumed)
+        .output()
+        .unwrap());
+    assert_eq!(contents(&resumed), contents(&full));
+    // One epoch at a time.
+    let mut prev = d.join("e1.safetensors");
+    fit(&data, &prev, &["--epochs", "4", "--stop-after", "1"]);
+    for e in 2..=4 {
+        let next = d.join(format!("e{e}.safetensors"));
+        ok(bin()
+            .arg("fit")
+            .arg(&data)
+            .arg("--resume")
+            .arg(&prev)
+            .args(["--stop-after", &e.to_string(), "--out"])
+            .arg(&next)
+            .output()
+            .unwrap());
+        prev = next;
+    }
+    assert_eq!(contents(&prev), contents(&full));
+    // The same fit again: the same file apart from the timing field.
+    let again = d.join("again.safetensors");
+    fit(&data, &again, &["--epochs", "4"]);
+    assert_eq!(contents(&again), contents(&full));
+}
+
+#[test]
+fn resuming_past_the_plan_says_how_the_schedule_continues() {
+    let d = dir("extend");
+    let data = table(&d);
+    let two = d.join("two.safetensors");
+    fit(&data, &two, &["--epochs", "2"]);
+    let four = d.join("four.safetensors");
+    let o = ok(bin()
+        .arg("fit")
+        .arg(&data)
+        .arg("--resume")
+        .arg(&two)
+        .args(["--epochs", "4", "--out"])
+        .arg(&four)
+        .output()
+        .unwrap());
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        e.contains("planned over 2 epochs") && e.contains("epochs 3 to 4 run at its final"),
+        "{e}"
+    );
+    let s = neural_sde::inspect_checkpoint(&four).unwrap();
+    assert_eq!(s.history.epochs.len(), 4);
+    // The schedule ended its cosine decay with epoch 2; epochs 3 and 4 run at its final rate,
+    // 0.05 of the default peak 3e-3 (`--help`; TrainConfig's defaults).
+    let lr = |k: usize| s.history.epochs[k].learning_rate;
+    assert_eq!(lr(2), lr(3));
+    assert!((lr(3) - 0.05 * 3e-3).abs() < 1e-15, "{}", lr(3));
+    assert!(lr(1) > lr(2));
+}
+
+#[test]
+fn a_fit_stopped_by_its_time_budget_continues_when_resumed() {
+    let d = dir("budget");
+    let data = table(&d);
+    let cut = d.join("cut.safetensors");
+    fit(&data, &cut, &["--epochs", "5", "--time-budget", "0.000001"]);
+    let s = neural_sde::inspect_checkpoint(&cut).unwrap();
+    assert_eq!(s.state.as_ref().unwrap().step, 0);
+    let more = d.join("more.safetensors");
+    let o = ok(bin()
+        .arg("fit")
+        .arg(&data)
+        .arg("--resume")
+        .arg(&cut)
+        .arg("--out")
+        .arg(&more)
+        .output()
+        .unwrap());
+    assert!(String::from_utf8_lossy(&o.stdout).contains("ran all planned epochs"));
+    let s = neural_sde::inspect_checkpoint(&more).unwrap();
+    assert_eq!(s.history.epochs.len(), 5);
+    assert!(s.state.unwrap().step > 0);
+}
