@@ -121,6 +121,7 @@ pub use tabular::train::{
     EpochRecord, History, Observer, StepInfo, TrainConfig, TrainReport, TrainState, Trainer,
 };
 pub use util::fs::writable_destination;
+pub use util::limits;
 pub use util::precision::Precision;
 pub use util::rng::{generator, standard_normals, Generator};
 pub use util::stack::{run_deep, DEEP_STACK_BYTES};

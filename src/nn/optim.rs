@@ -67,6 +67,9 @@ impl AdamWConfig {
     }
 }
 
+/// Most steps AdamW takes (its bias corrections raise β to the step count as an `i32`).
+const MAX_STEPS: u64 = i32::MAX as u64;
+
 /// What one optimiser step did.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct StepStats {
@@ -170,6 +173,12 @@ impl AdamW {
             Some(c) if norm > c => c / norm,
             _ => 1.0,
         };
+        if self.steps >= MAX_STEPS {
+            return Err(Error::Training(format!(
+                "AdamW has taken {} steps, the most it supports",
+                self.steps
+            )));
+        }
         self.steps += 1;
         let c = &self.cfg;
         let t = self.steps as i32;
@@ -212,8 +221,16 @@ impl AdamW {
     /// Restores the moments and the step count saved by [`AdamW::state_tensors`].
     ///
     /// # Errors
-    /// [`Error::Shape`] naming a missing or mis-shaped moment.
+    /// [`Error::Shape`] naming a missing or mis-shaped moment; [`Error::InvalidConfig`] for
+    /// a step count above 2³¹ − 1 (the bias corrections' exponent).
     pub fn load_state(&mut self, tensors: &HashMap<String, Tensor>, steps: u64) -> Result<()> {
+        if steps > MAX_STEPS {
+            return Err(Error::config(
+                "optimizer_steps",
+                steps,
+                format!("at most {MAX_STEPS} AdamW steps are supported"),
+            ));
+        }
         let mut m = Vec::with_capacity(self.vars.len());
         let mut v = Vec::with_capacity(self.vars.len());
         for (name, var) in &self.vars {

@@ -78,6 +78,12 @@ impl SamplerConfig {
             ));
         }
         self.optimizer.validate()?;
+        crate::util::limits::at_most(
+            "batch_size",
+            self.batch_size,
+            crate::util::limits::MAX_BATCH,
+            "paths per step",
+        )?;
         if let Some(t) = self.time_budget_secs {
             check_positive("time_budget_secs", t)?;
         }

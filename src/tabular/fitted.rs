@@ -112,11 +112,20 @@ impl TabularModel {
                 "use at least 1 posterior path per row",
             ));
         }
+        crate::util::limits::at_most(
+            "paths",
+            paths,
+            crate::util::limits::MAX_BATCH,
+            "posterior paths per row",
+        )?;
         let table = self.matching(table)?;
         let z = self.scaler.transform(&table);
         let d = self.columns.len();
         let mut rng = generator(seed, streams::EVAL);
-        let chunk_rows = (8192 / paths).max(1);
+        let chunk_rows = self
+            .model
+            .config()
+            .chunk_rows(d, paths, (8192 / paths).max(1));
         let (mut elbo_rows, mut loglik_rows) = (Vec::new(), Vec::new());
         let jac = self.scaler.log_jacobian();
         for chunk in z.chunks(chunk_rows * d) {
@@ -167,16 +176,20 @@ impl TabularModel {
         if rows == 0 {
             return Err(Error::config("rows", 0, "generate at least 1 row"));
         }
-        let mut rng = generator(seed, streams::EVAL);
-        let mut out = Vec::with_capacity(rows);
+        if rows > Self::KEPT_ROWS * 100 {
+            return Err(Error::config(
+                "rows",
+                rows,
+                format!(
+                    "at most {} rows are generated in memory; stream more to a file with generate_csv",
+                    Self::KEPT_ROWS * 100
+                ),
+            ));
+        }
         let d = self.columns.len();
-        let mut left = rows;
-        while left > 0 {
-            let n = left.min(4096);
-            let z = self.model.generate(n, &mut rng)?;
-            let y = self.scaler.inverse(&z);
-            out.extend(y.chunks_exact(d).map(<[f64]>::to_vec));
-            left -= n;
+        let mut out = Vec::with_capacity(rows);
+        for y in self.generated_batches(rows, seed) {
+            out.extend(y?.chunks_exact(d).map(<[f64]>::to_vec));
         }
         Table::new(self.columns.clone(), out)
     }
@@ -192,22 +205,48 @@ impl TabularModel {
         if rows == 0 {
             return Err(Error::config("rows", 0, "generate at least 1 row"));
         }
+        crate::util::limits::at_most(
+            "rows",
+            rows,
+            crate::util::limits::MAX_GENERATED_ROWS,
+            "rows per call",
+        )?;
         let mut file = crate::util::fs::AtomicFile::create(path.as_ref())?;
         crate::tabular::table::write_csv_header(&mut file, &self.columns)?;
-        let mut rng = generator(seed, streams::EVAL);
         let d = self.columns.len();
         let mut kept = Vec::new();
-        let mut left = rows;
-        while left > 0 {
-            let n = left.min(4096);
-            let y = self.scaler.inverse(&self.model.generate(n, &mut rng)?);
+        for y in self.generated_batches(rows, seed) {
+            let y = y?;
             crate::tabular::table::write_csv_rows(&mut file, &y, d)?;
-            let room = (Self::KEPT_ROWS - kept.len()).min(n);
+            let room = Self::KEPT_ROWS - kept.len();
             kept.extend(y.chunks_exact(d).take(room).map(<[f64]>::to_vec));
-            left -= n;
         }
         file.commit()?;
         Table::new(self.columns.clone(), kept)
+    }
+
+    /// `rows` generated rows in the data's units, row-major, in batches whose noise fits in
+    /// memory (the same batches for the same seed, whatever the caller does with them).
+    fn generated_batches(
+        &self,
+        rows: usize,
+        seed: u64,
+    ) -> impl Iterator<Item = Result<Vec<f64>>> + '_ {
+        let mut rng = generator(seed, streams::EVAL);
+        let chunk = self.model.config().chunk_rows(self.columns.len(), 1, 4096);
+        let mut left = rows;
+        std::iter::from_fn(move || {
+            if left == 0 {
+                return None;
+            }
+            let n = left.min(chunk);
+            left -= n;
+            Some(
+                self.model
+                    .generate(n, &mut rng)
+                    .map(|z| self.scaler.inverse(&z)),
+            )
+        })
     }
 
     /// Rows [`TabularModel::generate_csv`] returns at most.
@@ -278,6 +317,32 @@ impl TabularModel {
             }
             _ => {}
         }
+        header
+            .model_config
+            .validate_for(header.data_dim)
+            .map_err(|e| bad(format!("the stored configuration is invalid ({e})")))?;
+        if !header.model_config.custom_prior {
+            // The model is built only when its configuration needs not much more than the
+            // file holds (a few times, for the messages below to name the wrong tensor), so a
+            // hostile header cannot make it allocate more than the file's size allows; each
+            // tensor's shape is checked once it is built.
+            let held: u64 = crate::nn::checkpoint::tensor_sizes(path, &bytes)?
+                .into_iter()
+                .filter(|(n, _)| {
+                    !["optim.", "best.", "last."]
+                        .iter()
+                        .any(|p| n.starts_with(p))
+                })
+                .map(|(_, s)| s as u64)
+                .sum();
+            let implied = header.model_config.parameter_count(header.data_dim);
+            if implied.is_none_or(|n| n > 4 * held + 1_000_000) {
+                return Err(bad(format!(
+                    "the stored configuration implies {} parameters but the file holds {held}; the header does not match the weights",
+                    implied.map_or("more than 2^64".to_string(), |n| n.to_string())
+                )));
+            }
+        }
         let file = crate::nn::checkpoint::read_tensors(
             path,
             &bytes,
@@ -326,6 +391,14 @@ impl ModelHeader {
                 self.scaler.mean.len(),
                 self.data_dim
             ));
+        }
+        let scaler_ok = self.scaler.mean.iter().all(|m| m.is_finite())
+            && self.scaler.scale.iter().all(|s| s.is_finite() && *s > 0.0);
+        if !scaler_ok {
+            return Err(
+                "the scaler holds a non-finite mean or a scale that is not finite and positive"
+                    .into(),
+            );
         }
         Ok(())
     }

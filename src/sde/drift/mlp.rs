@@ -55,7 +55,22 @@ impl MlpConfig {
                 "use at least 1 hidden layer",
             ));
         }
-        Ok(())
+        use crate::util::limits::{at_most, MAX_DEPTH, MAX_WIDTH};
+        at_most("width", self.width, MAX_WIDTH, "hidden units")?;
+        at_most("depth", self.depth, MAX_DEPTH, "hidden layers")
+    }
+
+    /// Number of parameters of a [`TimeMlp`] with this shape on states of dimension `dim`
+    /// and contexts of dimension `context_dim` (`None` if it overflows).
+    pub(crate) fn parameter_count(&self, dim: usize, context_dim: usize) -> Option<u64> {
+        let (w, d, c) = (self.width as u64, dim as u64, context_dim as u64);
+        let first = w.checked_mul(d + 1 + c)?.checked_add(w)?;
+        let hidden = w
+            .checked_mul(w)?
+            .checked_add(w)?
+            .checked_mul(self.depth.saturating_sub(1) as u64)?;
+        let out = d.checked_mul(w)?.checked_add(d)?;
+        first.checked_add(hidden)?.checked_add(out)
     }
 }
 

@@ -60,13 +60,19 @@ impl SolverConfig {
     /// Checks the configuration.
     ///
     /// # Errors
-    /// [`Error::InvalidConfig`] for `n_steps == 0` or a non-finite or non-positive `t_end`.
+    /// [`Error::InvalidConfig`] for `n_steps` of 0 or above [`crate::limits::MAX_STEPS`], or a
+    /// non-finite or non-positive `t_end`.
     pub fn validate(&self) -> Result<()> {
         check_positive("t_end", self.t_end)?;
         if self.n_steps == 0 {
             return Err(Error::config("n_steps", 0, "use at least 1 solver step"));
         }
-        Ok(())
+        crate::util::limits::at_most(
+            "n_steps",
+            self.n_steps,
+            crate::util::limits::MAX_STEPS,
+            "solver steps",
+        )
     }
 
     /// The step size `h = T/N`.

@@ -57,7 +57,25 @@ impl DecoderConfig {
                 "an MLP decoder needs width and depth of at least 1",
             ));
         }
-        Ok(())
+        use crate::util::limits::{at_most, MAX_DEPTH, MAX_WIDTH};
+        at_most("decoder.width", self.width, MAX_WIDTH, "hidden units")?;
+        at_most("decoder.depth", self.depth, MAX_DEPTH, "hidden layers")
+    }
+
+    /// Number of parameters of the decoder's mean map from `latent_dim` to `data_dim`
+    /// (`None` if it overflows).
+    pub(crate) fn parameter_count(&self, latent_dim: usize, data_dim: usize) -> Option<u64> {
+        let (d, dd, w) = (latent_dim as u64, data_dim as u64, self.width as u64);
+        let mut n = dd.checked_mul(d)?.checked_add(dd)?;
+        if self.kind == DecoderKind::Mlp {
+            let mut fan_in = d;
+            for _ in 0..self.depth {
+                n = n.checked_add(w.checked_mul(fan_in)?.checked_add(w)?)?;
+                fan_in = w;
+            }
+            n = n.checked_add(dd.checked_mul(w)?.checked_add(dd)?)?;
+        }
+        Some(n)
     }
 }
 

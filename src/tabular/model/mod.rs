@@ -97,6 +97,14 @@ impl LatentConfig {
                 "use at least 1 latent dimension",
             ));
         }
+        if let Some(d) = self.latent_dim {
+            crate::util::limits::at_most(
+                "latent_dim",
+                d,
+                crate::util::limits::MAX_LATENT_DIM,
+                "latent dimensions",
+            )?;
+        }
         self.prior.validate()?;
         self.control.validate()?;
         self.decoder.validate()?;
@@ -117,6 +125,72 @@ impl LatentConfig {
             ));
         }
         Ok(())
+    }
+}
+
+impl LatentConfig {
+    /// The latent dimension for `data_dim` columns.
+    pub(crate) fn latent_for(&self, data_dim: usize) -> usize {
+        self.latent_dim.unwrap_or(data_dim)
+    }
+
+    /// Checks that a model of `data_dim` columns is within the crate's limits.
+    ///
+    /// # Errors
+    /// [`Error::InvalidConfig`] naming the setting that is too large.
+    pub(crate) fn validate_for(&self, data_dim: usize) -> Result<()> {
+        self.validate()?;
+        use crate::util::limits::{at_most, MAX_COLUMNS, MAX_LATENT_DIM};
+        at_most("columns", data_dim, MAX_COLUMNS, "columns")
+            .map_err(|_| Error::config(
+                "columns",
+                data_dim,
+                format!("at most {MAX_COLUMNS} columns are supported (the full-covariance decoder grows with their square); choose columns with --columns"),
+            ))?;
+        at_most(
+            "latent_dim",
+            self.latent_for(data_dim),
+            MAX_LATENT_DIM,
+            "latent dimensions",
+        )
+    }
+
+    /// Number of parameters of the model with the built-in prior for `data_dim` columns
+    /// (`None` if it overflows).
+    pub(crate) fn parameter_count(&self, data_dim: usize) -> Option<u64> {
+        let d = self.latent_for(data_dim);
+        let dd = data_dim as u64;
+        self.prior
+            .parameter_count(d, 0)?
+            .checked_add(self.control.parameter_count(d, data_dim)?)?
+            .checked_add(2 * d as u64)?
+            .checked_add(self.decoder.parameter_count(d, data_dim)?)?
+            .checked_add(dd.checked_mul(dd)?.checked_add(dd)?)
+    }
+
+    /// Values a training step on `batch` rows keeps for backpropagation and draws as noise
+    /// (about: each network's hidden outputs and their derivatives, the state, the control
+    /// and the noise, per step and row; `None` if it overflows).
+    pub(crate) fn step_values(&self, data_dim: usize, batch: usize) -> Option<u64> {
+        let d = self.latent_for(data_dim) as u64;
+        let nets = |m: &MlpConfig| (m.width as u64).checked_mul(2 * m.depth as u64);
+        let per_row_step = nets(&self.prior)?
+            .checked_add(nets(&self.control)?)?
+            .checked_add(d.checked_mul(4)?)?;
+        per_row_step
+            .checked_mul(self.solver.n_steps as u64)?
+            .checked_mul(batch as u64)
+    }
+
+    /// Rows of `paths` paths each that one inference chunk can hold within
+    /// [`crate::limits::MAX_STEP_VALUES`] values of noise (at least 1, at most `max_rows`).
+    pub(crate) fn chunk_rows(&self, data_dim: usize, paths: usize, max_rows: usize) -> usize {
+        let per_row = (self.solver.n_steps as u64)
+            .saturating_mul(self.latent_for(data_dim) as u64)
+            .saturating_mul(paths.max(1) as u64)
+            .max(1);
+        let fit = (crate::util::limits::MAX_STEP_VALUES / 4 / per_row).max(1);
+        (fit.min(max_rows as u64) as usize).max(1)
     }
 }
 
@@ -195,10 +269,10 @@ impl LatentModel {
         factory: Option<&PriorFactory>,
     ) -> Result<Self> {
         let varmap = VarMap::new();
-        cfg.validate()?;
         if data_dim == 0 {
             return Err(Error::config("data_dim", 0, "rows need at least 1 column"));
         }
+        cfg.validate_for(data_dim)?;
         let latent_dim = cfg.latent_dim.unwrap_or(data_dim);
         let device = Device::Cpu;
         let pb = ParamBuilder::new(&varmap, cfg.precision.dtype(), &device);

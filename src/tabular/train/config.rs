@@ -81,6 +81,21 @@ impl TrainConfig {
             ));
         }
         self.optimizer.validate()?;
+        use crate::util::limits::{at_most, MAX_BATCH};
+        at_most("epochs", self.epochs, 10_000_000, "epochs")?;
+        at_most(
+            "min_steps_per_epoch",
+            self.min_steps_per_epoch,
+            10_000_000,
+            "steps per epoch",
+        )?;
+        at_most("batch_size", self.batch_size, MAX_BATCH, "rows per batch")?;
+        at_most(
+            "validation_paths",
+            self.validation_paths,
+            MAX_BATCH,
+            "paths per row",
+        )?;
         if !(0.0..1.0).contains(&self.validation_fraction) {
             return Err(Error::config(
                 "validation_fraction",

@@ -95,6 +95,30 @@ impl Sums {
     }
 }
 
+/// Refuses settings whose training step would not fit in memory.
+fn check_step_size(model_cfg: &LatentConfig, data_dim: usize, batch: usize) -> Result<()> {
+    let max = crate::util::limits::MAX_STEP_VALUES;
+    match model_cfg.step_values(data_dim, batch) {
+        Some(v) if v <= max => Ok(()),
+        v => Err(Error::config(
+            "batch_size",
+            batch,
+            format!(
+                "a training step would keep about {} values for backpropagation (steps × batch × width × depth), more than the {max} allowed; lower the batch size, steps, width or depth",
+                v.map_or("more than 2^64".to_string(), |v| v.to_string())
+            ),
+        )),
+    }
+}
+
+/// Whether every value of `t` is finite.
+fn all_finite(t: &Tensor) -> bool {
+    t.flatten_all()
+        .and_then(|t| t.to_dtype(candle_core::DType::F64))
+        .and_then(|t| t.to_vec1::<f64>())
+        .is_ok_and(|v| v.iter().all(|x| x.is_finite()))
+}
+
 fn no_epoch() -> Error {
     Error::Training("no epoch is in progress".into())
 }
@@ -210,7 +234,8 @@ impl Trainer {
         prior: Option<&PriorFactory>,
     ) -> Result<Self> {
         train_cfg.validate()?;
-        model_cfg.validate()?;
+        model_cfg.validate_for(table.n_cols())?;
+        check_step_size(&model_cfg, table.n_cols(), train_cfg.batch_size)?;
         let (train_idx, val_idx) = split_rows(
             table.n_rows(),
             train_cfg.validation_fraction,
@@ -318,6 +343,43 @@ impl Trainer {
         let (Some(train_cfg), Some(mut state)) = (training.train_config, training.state) else {
             return Err(missing());
         };
+        let invalid = |what: String| Error::Checkpoint {
+            path: path.to_path_buf(),
+            reason: format!("the stored training state is invalid ({what}); train a new model"),
+        };
+        train_cfg.validate().map_err(|e| invalid(e.to_string()))?;
+        check_step_size(
+            model.model.config(),
+            model.columns.len(),
+            train_cfg.batch_size,
+        )
+        .map_err(|e| invalid(e.to_string()))?;
+        let r = state.recovery;
+        if !(r.lr_scale.is_finite() && r.lr_scale > 0.0 && r.lr_scale <= 1.0) {
+            return Err(invalid(format!("learning-rate scale {}", r.lr_scale)));
+        }
+        if state.best_elbo.is_some_and(|b| !b.is_finite()) || !state.seconds.is_finite() {
+            return Err(invalid("a non-finite best ELBO or time".into()));
+        }
+        if let Some((name, _)) = file.iter().find(|(_, t)| !all_finite(t)) {
+            return Err(Error::Checkpoint {
+                path: path.to_path_buf(),
+                reason: format!(
+                    "tensor {name} holds NaN or infinite values; training cannot continue from it (resume from an earlier checkpoint)"
+                ),
+            });
+        }
+        if let Some((name, _)) = sorted_vars(model.model.varmap())?
+            .into_iter()
+            .find(|(_, v)| !all_finite(v.as_tensor()))
+        {
+            return Err(Error::Checkpoint {
+                path: path.to_path_buf(),
+                reason: format!(
+                    "weight {name} holds NaN or infinite values; training cannot continue from it (resume from an earlier checkpoint)"
+                ),
+            });
+        }
         if let Some(t) = timing.timing.training_seconds {
             state.seconds = t;
         }
@@ -472,9 +534,9 @@ impl Trainer {
 
     /// Steps the schedule is planned over: stored when training started.
     fn planned_steps(&self) -> u64 {
-        self.state
-            .planned_steps
-            .unwrap_or((self.train_cfg.epochs * self.batches_per_epoch()) as u64)
+        self.state.planned_steps.unwrap_or(
+            (self.train_cfg.epochs as u64).saturating_mul(self.batches_per_epoch() as u64),
+        )
     }
 
     /// Epochs the learning-rate schedule is planned over (see [`TrainState::planned_steps`]).
@@ -489,7 +551,12 @@ impl Trainer {
         let k = self.train_cfg.validation_paths;
         let mut rng = generator(self.train_cfg.seed, streams::EVAL);
         let (mut sum, mut n) = (0.0, 0usize);
-        for chunk in rows.chunks((4096 / k).max(1) * d) {
+        let chunk_rows = self
+            .model
+            .model
+            .config()
+            .chunk_rows(d, k, (4096 / k).max(1));
+        for chunk in rows.chunks(chunk_rows * d) {
             let t = self.model.model.posterior_terms(chunk, k, &mut rng)?;
             sum += t.elbo.iter().sum::<f64>();
             n += t.elbo.len();
