@@ -108,6 +108,8 @@ pub use sde::noise::BrownianIncrements;
 pub use sde::objective::{FreeEnergy, FreeEnergyValues};
 pub use sde::solver::{simulate, Kernel, Paths, Scheme, Sde, SolverConfig};
 pub use sde::terminal::{BernoulliNll, GaussianNll, TerminalCost};
+#[cfg(feature = "csv")]
+pub use tabular::csv_io::HeaderLine;
 pub use tabular::demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
 pub use tabular::evaluation::{EvalOptions, Evaluation};
 pub use tabular::fitted::TabularModel;

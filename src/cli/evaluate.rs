@@ -5,7 +5,7 @@ use std::path::PathBuf;
 use clap::Args;
 use neural_sde::{EvalOptions, TabularModel};
 
-use super::{load_table, positive_usize, Failure};
+use super::{positive_usize, Failure};
 
 #[derive(Debug, Args)]
 pub struct EvaluateArgs {
@@ -13,6 +13,12 @@ pub struct EvaluateArgs {
     model: PathBuf,
     /// CSV file with (at least) the model's columns.
     data: Option<PathBuf>,
+    /// The CSV file's first line names the columns, even if the names are numbers.
+    #[arg(long)]
+    header: bool,
+    /// The CSV file has no header line (its columns are named c1, c2, …).
+    #[arg(long)]
+    no_header: bool,
     /// Evaluate on the built-in demo table instead of a file.
     #[arg(long)]
     demo: bool,
@@ -29,7 +35,12 @@ pub struct EvaluateArgs {
 
 pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
     let model = TabularModel::load(&a.model)?;
-    let table = load_table(a.data.as_deref(), a.demo, Some(model.columns()))?;
+    let table = super::load_table_with(
+        a.data.as_deref(),
+        a.demo,
+        Some(model.columns()),
+        super::header_line(a.header, a.no_header)?,
+    )?;
     let e = model.evaluate(&table, EvalOptions::new(a.paths, a.seed))?;
     if a.json {
         let v = serde_json::json!({

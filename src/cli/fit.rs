@@ -8,7 +8,7 @@ use neural_sde::{
 };
 
 use super::files::Files;
-use super::{fraction, load_table, positive_f64, positive_usize, Failure};
+use super::{fraction, positive_f64, positive_usize, Failure};
 
 #[derive(Debug, Args)]
 pub struct FitArgs {
@@ -20,6 +20,13 @@ pub struct FitArgs {
     /// Where to write the model (a .safetensors file; written only when fitting succeeds).
     #[arg(long)]
     out: PathBuf,
+    /// The CSV file's first line names the columns, even if the names are numbers.
+    #[arg(long)]
+    header: bool,
+    /// The CSV file has no header line: the first line is data and the columns are named
+    /// c1, c2, … (a first line of numbers only is refused unless one of these is given).
+    #[arg(long)]
+    no_header: bool,
     /// Columns to model, comma-separated [default: all].
     #[arg(long, value_delimiter = ',')]
     columns: Option<Vec<String>>,
@@ -84,7 +91,8 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
         .output("--history", a.history.as_deref())
         .output("--plot", a.plot.as_deref())
         .check()?;
-    let table = load_table(a.data.as_deref(), a.demo, a.columns.as_deref())?;
+    let header = super::header_line(a.header, a.no_header)?;
+    let table = super::load_table_with(a.data.as_deref(), a.demo, a.columns.as_deref(), header)?;
     let mut trainer = match &a.resume {
         Some(ck) => {
             let mut t = Trainer::resume(ck, &table)?;
@@ -136,6 +144,9 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
             t
         }
     };
+    for w in trainer.warnings() {
+        eprintln!("warning: {w}");
+    }
     trainer.set_time_budget(Some(a.time_budget))?;
     if let Some(every) = a.checkpoint_every {
         trainer.checkpoint_every(every, &a.out)?;
@@ -150,7 +161,7 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
     let (report, failure) = match outcome {
         Ok(r) => (Some(r), None),
         // Keep what was learned: after a training failure the trainer holds the best weights.
-        Err(e @ neural_sde::Error::Training(_)) => (None, Some(Failure::from(e))),
+        Err(neural_sde::Error::Training(why)) => (None, Some(why)),
         Err(e) => return Err(e.into()),
     };
     trainer.save(&a.out)?;
@@ -160,10 +171,9 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
     if let Some(p) = &a.plot {
         neural_sde::plot::elbo_curve_svg(trainer.history(), dims, p)?;
     }
-    if let Some(f) = failure {
+    if let Some(why) = failure {
         return Err(Failure::from(neural_sde::Error::Training(format!(
-            "{}; the best model so far was written to {}",
-            f.message,
+            "{why}; the best model so far was written to {}",
             a.out.display()
         ))));
     }

@@ -124,11 +124,23 @@ pub fn first_line(text: &str) -> &str {
     text.lines().next().unwrap_or("unknown error")
 }
 
-/// Loads a CSV table or the demo table, keeping `columns` when given.
-pub fn load_table(
+/// The `--header` / `--no-header` choice.
+pub fn header_line(header: bool, no_header: bool) -> Result<neural_sde::HeaderLine, Failure> {
+    match (header, no_header) {
+        (true, true) => Err(Failure::input("give --header or --no-header, not both")),
+        (true, false) => Ok(neural_sde::HeaderLine::Present),
+        (false, true) => Ok(neural_sde::HeaderLine::Absent),
+        (false, false) => Ok(neural_sde::HeaderLine::Auto),
+    }
+}
+
+/// Loads a CSV table or the demo table, keeping `columns` when given; `header` says whether
+/// the CSV file's first line names the columns.
+pub fn load_table_with(
     data: Option<&Path>,
     demo: bool,
     columns: Option<&[String]>,
+    header: neural_sde::HeaderLine,
 ) -> Result<neural_sde::Table, Failure> {
     match (data, demo) {
         (Some(_), true) => Err(Failure::input(
@@ -137,7 +149,7 @@ pub fn load_table(
         (None, false) => Err(Failure::input(
             "give a data file (CSV with a header), or --demo for the built-in demo table",
         )),
-        (Some(p), false) => Ok(neural_sde::Table::from_csv(p, columns)?),
+        (Some(p), false) => Ok(neural_sde::Table::from_csv_with_header(p, columns, header)?),
         (None, true) => {
             let t = neural_sde::builtin_demo()?;
             Ok(match columns {

@@ -6,7 +6,7 @@ use clap::Args;
 use neural_sde::TabularModel;
 
 use super::files::Files;
-use super::{load_table, positive_usize, Failure};
+use super::{positive_usize, Failure};
 
 #[derive(Debug, Args)]
 pub struct SampleArgs {
@@ -27,6 +27,12 @@ pub struct SampleArgs {
     /// Table to draw beside the generated rows in the plot (e.g. the training data).
     #[arg(long)]
     data: Option<PathBuf>,
+    /// The CSV file's first line names the columns, even if the names are numbers.
+    #[arg(long)]
+    header: bool,
+    /// The CSV file has no header line (its columns are named c1, c2, …).
+    #[arg(long)]
+    no_header: bool,
     /// Draw the built-in demo table beside the generated rows.
     #[arg(long)]
     demo: bool,
@@ -41,10 +47,11 @@ pub fn run(a: SampleArgs) -> Result<(), Failure> {
         .check()?;
     let model = TabularModel::load(&a.model)?;
     let reference = if a.data.is_some() || a.demo {
-        Some(load_table(
+        Some(super::load_table_with(
             a.data.as_deref(),
             a.demo,
             Some(model.columns()),
+            super::header_line(a.header, a.no_header)?,
         )?)
     } else {
         None

@@ -2,7 +2,7 @@
 //! the latent-diffusion model, its trainer, the fitted model and its checkpoint contents.
 
 #[cfg(feature = "csv")]
-mod csv_io;
+pub(crate) mod csv_io;
 pub(crate) mod demo;
 pub(crate) mod evaluation;
 pub(crate) mod fitted;

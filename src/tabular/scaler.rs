@@ -18,41 +18,49 @@ pub struct Standardizer {
 }
 
 impl Standardizer {
-    /// Fits means and standard deviations on `table`.
+    /// Fits means and standard deviations on `table`. Columns of huge values (whose squares
+    /// overflow) are measured in units of their largest magnitude, so every fitted mean and
+    /// scale is finite.
     ///
     /// # Errors
-    /// [`Error::Data`] naming a constant column, which cannot be standardised.
+    /// [`Error::Data`] naming a column that is constant, or varies by less than 10⁻¹² of its
+    /// size, which cannot be standardised.
     pub fn fit(table: &Table) -> Result<Self> {
-        let (n, d) = (table.n_rows() as f64, table.n_cols());
+        let d = table.n_cols();
         let mut mean = vec![0.0; d];
-        for i in 0..table.n_rows() {
-            for (m, v) in mean.iter_mut().zip(table.row(i)) {
-                *m += v / n;
-            }
-        }
-        let mut var = vec![0.0; d];
-        for i in 0..table.n_rows() {
-            for j in 0..d {
-                var[j] += (table.row(i)[j] - mean[j]).powi(2) / n;
-            }
-        }
-        let scale: Vec<f64> = var.iter().map(|v| v.sqrt()).collect();
+        let mut scale = vec![0.0; d];
         for j in 0..d {
-            if scale[j].is_nan() || scale[j] <= 1e-12 * mean[j].abs().max(1e-300) {
-                return Err(Error::Data {
-                    path: table.source().to_path_buf(),
-                    reason: format!(
-                        "column '{}' is constant (every value is {}) and cannot be standardised; leave it out of the selected columns",
-                        table.columns()[j],
-                        mean[j]
-                    ),
-                });
+            let col = table.column(j);
+            let (mut m, mut s) = mean_sd(&col, 1.0);
+            if !(m.is_finite() && s.is_finite()) {
+                let big = col.iter().fold(0.0f64, |a, v| a.max(v.abs()));
+                let (ms, ss) = mean_sd(&col, big);
+                (m, s) = (ms * big, ss * big);
             }
+            let name = crate::util::text::clip(&table.columns()[j]);
+            let refuse = |reason: String| Error::Data {
+                path: table.source().to_path_buf(),
+                reason,
+            };
+            if s == 0.0 {
+                return Err(refuse(format!(
+                    "column '{name}' is constant (every value is {m}) and cannot be standardised; leave it out of the selected columns"
+                )));
+            }
+            if !(s.is_finite() && m.is_finite()) || s <= 1e-12 * m.abs() {
+                return Err(refuse(format!(
+                    "column '{name}' varies by less than 1e-12 relative to its size (mean {m:e}, standard deviation {s:e}) and cannot be standardised; leave it out or subtract a constant first"
+                )));
+            }
+            mean[j] = m;
+            scale[j] = s;
         }
         Ok(Self { mean, scale })
     }
 
     /// Standardised values of `table`, row-major.
+    ///
+    /// (Values are finite: [`Standardizer::fit`] keeps every mean and scale finite.)
     pub fn transform(&self, table: &Table) -> Vec<f64> {
         let d = self.mean.len();
         table
@@ -76,4 +84,12 @@ impl Standardizer {
     pub fn log_jacobian(&self) -> f64 {
         -self.scale.iter().map(|s| s.ln()).sum::<f64>()
     }
+}
+
+/// Mean and population standard deviation of `v / unit` (two passes, as the fit always did).
+fn mean_sd(v: &[f64], unit: f64) -> (f64, f64) {
+    let n = v.len() as f64;
+    let mean = v.iter().map(|x| x / unit / n).sum::<f64>();
+    let var = v.iter().map(|x| (x / unit - mean).powi(2) / n).sum::<f64>();
+    (mean, var.sqrt())
 }

@@ -174,6 +174,8 @@ fn quote(s: &str) -> String {
     }
 }
 
+use crate::util::text::clip;
+
 pub(crate) fn check_names(columns: &[String]) -> std::result::Result<(), String> {
     if columns.is_empty() {
         return Err("no columns; the first line must name the columns".into());
@@ -187,7 +189,8 @@ pub(crate) fn check_names(columns: &[String]) -> std::result::Result<(), String>
         }
         if let Some(k) = columns[..j].iter().position(|o| o == c) {
             return Err(format!(
-                "column name '{c}' appears twice (columns {} and {}); rename one",
+                "column name '{}' appears twice (columns {} and {}); rename one",
+                clip(c),
                 k + 1,
                 j + 1
             ));
@@ -209,8 +212,9 @@ pub(crate) fn column_indices(
         .map(|n| {
             columns.iter().position(|c| c == n).ok_or_else(|| {
                 format!(
-                    "unknown column '{n}'; the columns are: {}",
-                    columns.join(", ")
+                    "unknown column '{}'; the columns are: {}",
+                    clip(n),
+                    clip(&columns.join(", "))
                 )
             })
         })

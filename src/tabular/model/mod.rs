@@ -152,7 +152,11 @@ impl LatentConfig {
             self.latent_for(data_dim),
             MAX_LATENT_DIM,
             "latent dimensions",
-        )
+        )?;
+        if !self.custom_prior {
+            crate::util::limits::parameters(self.parameter_count(data_dim))?;
+        }
+        Ok(())
     }
 
     /// Number of parameters of the model with the built-in prior for `data_dim` columns

@@ -174,6 +174,7 @@ pub struct Trainer {
     /// The weights training had reached when [`Trainer::fit`] put the best ones in the
     /// model: training continues from them, and checkpoints keep them (`last.*`).
     last: Option<Snapshot>,
+    warnings: Vec<String>,
 }
 
 impl std::fmt::Debug for Trainer {
@@ -241,6 +242,27 @@ impl Trainer {
             train_cfg.validation_fraction,
             train_cfg.seed,
         )?;
+        let d = table.n_cols();
+        if train_idx.len() <= d {
+            return Err(Error::Data {
+                path: table.source().to_path_buf(),
+                reason: format!(
+                    "{} training rows ({} rows, {} held out for validation) for {d} columns: the model's full covariance needs more training rows than columns (at least {}, and many more for a useful fit); add rows, choose fewer columns, or hold out fewer rows",
+                    train_idx.len(),
+                    table.n_rows(),
+                    val_idx.len(),
+                    d + 1
+                ),
+            });
+        }
+        let mut warnings = Vec::new();
+        let enough = (10 * d).max(50);
+        if train_idx.len() < enough {
+            warnings.push(format!(
+                "only {} training rows for {d} columns (fewer than {enough}): the fit can be far too confident, and its likelihood on the training rows says little; judge it on held-out rows",
+                train_idx.len()
+            ));
+        }
         if train_idx.len() < train_cfg.batch_size {
             return Err(Error::Data {
                 path: table.source().to_path_buf(),
@@ -292,6 +314,7 @@ impl Trainer {
             epoch_run: None,
             periodic: None,
             last: None,
+            warnings,
         };
         trainer.state.planned_steps = Some(trainer.planned_steps());
         // The initial model is the rows' Gaussian fit: its ELBO is the bar to beat, so
@@ -454,12 +477,19 @@ impl Trainer {
             epoch_run: None,
             periodic: None,
             last: (!last.is_empty()).then_some(last),
+            warnings: Vec::new(),
         })
     }
 
     /// Adds an observer of progress.
     pub fn add_observer(&mut self, observer: Box<dyn Observer>) {
         self.observers.push(observer);
+    }
+
+    /// What looks doubtful about the table for this model (too few rows for its columns,
+    /// say); training runs anyway. The command-line tool prints these.
+    pub fn warnings(&self) -> &[String] {
+        &self.warnings
     }
 
     /// The training settings.
@@ -647,8 +677,12 @@ impl Trainer {
                 if let Err(e) = recovered {
                     self.epoch_run = None;
                     self.restore_best()?;
+                    let why = match e {
+                        Error::Training(m) => m,
+                        other => other.to_string(),
+                    };
                     return Err(Error::Training(format!(
-                        "{e}; stopped and kept the best weights (epoch {}). Lower the learning rate or standardise unusual columns",
+                        "{why}; stopped and kept the best weights (epoch {}). Lower the learning rate or standardise unusual columns",
                         self.state.best_epoch
                     )));
                 }

@@ -1,0 +1,363 @@
+//! Absurd values, odd tables and broken files on the command line: clear errors (exit 2, one
+//! short line) or a working model, never a crash, an exhausted memory or a file that cannot
+//! be read back.
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn bin() -> Command {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_neural-sde"));
+    c.env("RAYON_NUM_THREADS", "1");
+    c
+}
+
+fn dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("neural-sde-hostile-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+fn stderr(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+/// Exit 2, one line, no panic, naming `contains`.
+fn refused(o: &Output, contains: &[&str]) {
+    let e = stderr(o);
+    assert_eq!(o.status.code(), Some(2), "stderr: {e}");
+    assert_eq!(e.lines().count(), 1, "{e}");
+    assert!(!e.contains("panicked"), "{e}");
+    assert!(e.len() < 1200, "a {}-byte message", e.len());
+    for c in contains {
+        assert!(e.contains(c), "missing '{c}' in: {e}");
+    }
+}
+
+fn write_csv(d: &Path, name: &str, header: &str, rows: impl Iterator<Item = String>) -> PathBuf {
+    let p = d.join(name);
+    let body: String = rows.map(|r| r + "\n").collect();
+    std::fs::write(&p, format!("{header}\n{body}")).unwrap();
+    p
+}
+
+fn small(d: &Path) -> PathBuf {
+    write_csv(
+        d,
+        "small.csv",
+        "a,b",
+        (0..100).map(|i| format!("{},{}", i % 13, (i * 7) % 11)),
+    )
+}
+
+#[test]
+fn absurd_sizes_on_the_command_line_are_refused() {
+    let d = dir("sizes");
+    let data = small(&d);
+    let out = d.join("m.safetensors");
+    for (opt, val) in [
+        ("--hidden", "1000000000"),
+        ("--hidden", "18446744073709551615"),
+        ("--depth", "1000000000"),
+        ("--steps", "1000000000"),
+        ("--latent-dim", "18446744073709551615"),
+        ("--batch-size", "18446744073709551615"),
+        ("--epochs", "18446744073709551615"),
+    ] {
+        let o = bin()
+            .arg("fit")
+            .arg(&data)
+            .args([opt, val, "--out"])
+            .arg(&out)
+            .output()
+            .unwrap();
+        refused(&o, &["at most"]);
+    }
+    // Within each limit, but too many parameters together.
+    let o = bin()
+        .arg("fit")
+        .arg(&data)
+        .args(["--hidden", "16000", "--depth", "60", "--out"])
+        .arg(&out)
+        .output()
+        .unwrap();
+    refused(&o, &["parameters"]);
+    assert!(!out.exists());
+    let o = bin()
+        .arg("fit")
+        .arg(&data)
+        .args(["--epochs", "1", "--out"])
+        .arg(&out)
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", stderr(&o));
+    for args in [
+        vec!["evaluate", "--paths", "1000000000"],
+        vec!["evaluate", "--paths", "18446744073709551615"],
+    ] {
+        let o = bin()
+            .args(&args[..1])
+            .arg(&out)
+            .arg(&data)
+            .args(&args[1..])
+            .output()
+            .unwrap();
+        refused(&o, &["at most"]);
+    }
+    for rows in ["1000000000", "18446744073709551615"] {
+        let o = bin()
+            .arg("sample")
+            .arg(&out)
+            .args(["--rows", rows, "--out"])
+            .arg(d.join("s.csv"))
+            .output()
+            .unwrap();
+        refused(&o, &["at most"]);
+    }
+    assert!(!d.join("s.csv").exists());
+}
+
+#[test]
+fn odd_tables_are_refused_or_warned_about() {
+    let d = dir("tables");
+    let out = d.join("m.safetensors");
+    let fit = |data: &Path, extra: &[&str]| {
+        bin()
+            .arg("fit")
+            .arg(data)
+            .args(["--epochs", "1"])
+            .args(extra)
+            .arg("--out")
+            .arg(&out)
+            .output()
+            .unwrap()
+    };
+    // No more rows than columns.
+    let cols: Vec<String> = (0..40).map(|j| format!("x{j}")).collect();
+    let wide = write_csv(
+        &d,
+        "wide.csv",
+        &cols.join(","),
+        (0..30).map(|i| {
+            (0..40)
+                .map(|j| ((i * 31 + j * 17) % 23).to_string())
+                .collect::<Vec<_>>()
+                .join(",")
+        }),
+    );
+    refused(
+        &fit(&wide, &[]),
+        &["more training rows than columns", "at least 41"],
+    );
+    // Thousands of columns: refused up front, with what to do.
+    let cols: Vec<String> = (0..5000).map(|j| format!("x{j}")).collect();
+    let huge = write_csv(
+        &d,
+        "huge.csv",
+        &cols.join(","),
+        (0..3).map(|i| vec![i.to_string(); 5000].join(",")),
+    );
+    let t0 = std::time::Instant::now();
+    refused(&fit(&huge, &[]), &["at most 1000 columns", "--columns"]);
+    assert!(t0.elapsed().as_secs() < 30);
+    // A few rows: it fits, with a warning.
+    let tiny = write_csv(
+        &d,
+        "tiny.csv",
+        "a,b",
+        (0..8).map(|i| format!("{i},{}", (i * 3) % 5)),
+    );
+    let o = fit(&tiny, &["--batch-size", "1"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert!(
+        stderr(&o).contains("warning: only 6 training rows"),
+        "{}",
+        stderr(&o)
+    );
+    // A numbers-only first line.
+    let numeric = write_csv(
+        &d,
+        "numeric.csv",
+        "1.5,2",
+        (0..100).map(|i| format!("{},{}", i % 13, (i * 7) % 11)),
+    );
+    refused(
+        &fit(&numeric, &[]),
+        &["only numbers", "--no-header", "--header"],
+    );
+    let o = fit(&numeric, &["--no-header"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let s = neural_sde::inspect_checkpoint(&out).unwrap();
+    assert_eq!(s.columns, vec!["c1", "c2"]);
+    let o = fit(&numeric, &["--header"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert_eq!(
+        neural_sde::inspect_checkpoint(&out).unwrap().columns,
+        vec!["1.5", "2"]
+    );
+    refused(&fit(&numeric, &["--header", "--no-header"]), &["not both"]);
+}
+
+#[test]
+fn huge_and_nearly_constant_columns() {
+    let d = dir("scale");
+    let out = d.join("m.safetensors");
+    // Values around 1e200: their squares overflow; the scale is computed in units of the
+    // largest magnitude, so the model is written with a finite scaler and reads back.
+    let big = write_csv(
+        &d,
+        "big.csv",
+        "a,b",
+        (0..100).map(|i| format!("{}e200,{}", 1 + i % 13, (i * 7) % 11)),
+    );
+    let o = bin()
+        .arg("fit")
+        .arg(&big)
+        .args(["--epochs", "1", "--validation-fraction", "0", "--out"])
+        .arg(&out)
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", stderr(&o));
+    let s = neural_sde::inspect_checkpoint(&out).unwrap();
+    assert!(s.scaler.scale.iter().all(|v| v.is_finite() && *v > 0.0));
+    // Population sd of 1..13 cycling over the 100 rows (all trained on), times 1e200.
+    let col: Vec<f64> = (0..100).map(|i| (1 + i % 13) as f64).collect();
+    let m = col.iter().sum::<f64>() / 100.0;
+    let sd = (col.iter().map(|v| (v - m).powi(2)).sum::<f64>() / 100.0).sqrt();
+    assert!(
+        (s.scaler.scale[0] / 1e200 - sd).abs() < 1e-9 * sd,
+        "{} vs {sd}e200",
+        s.scaler.scale[0]
+    );
+    let o = bin().arg("evaluate").arg(&out).arg(&big).output().unwrap();
+    assert!(o.status.success(), "{}", stderr(&o));
+    let o = bin()
+        .arg("sample")
+        .arg(&out)
+        .args(["--rows", "5", "--out"])
+        .arg(d.join("s.csv"))
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", stderr(&o));
+    // Varies by 1e-9 around 1e6: not constant, but too little to standardise.
+    let flat = write_csv(
+        &d,
+        "flat.csv",
+        "a,b",
+        (0..100).map(|i| format!("{},{}", 1e6 + 1e-9 * (i % 2) as f64, i % 7)),
+    );
+    let o = bin()
+        .arg("fit")
+        .arg(&flat)
+        .arg("--out")
+        .arg(d.join("flat.safetensors"))
+        .output()
+        .unwrap();
+    refused(
+        &o,
+        &["column 'a' varies by less than 1e-12 relative to its size"],
+    );
+}
+
+#[test]
+fn long_cells_and_names_are_clipped_in_messages() {
+    let d = dir("clip");
+    let cell = "y".repeat(1_000_000);
+    let bad = write_csv(
+        &d,
+        "bad.csv",
+        "a,b",
+        (0..10).map(|i| {
+            if i == 5 {
+                format!("1,{cell}")
+            } else {
+                format!("{i},2")
+            }
+        }),
+    );
+    let o = bin()
+        .arg("fit")
+        .arg(&bad)
+        .arg("--out")
+        .arg(d.join("m.safetensors"))
+        .output()
+        .unwrap();
+    refused(&o, &["line 7", "more characters"]);
+    let name = "n".repeat(100_000);
+    let bad = write_csv(
+        &d,
+        "name.csv",
+        &format!("{name},{name}"),
+        (0..3).map(|i| format!("{i},{i}")),
+    );
+    let o = bin()
+        .arg("fit")
+        .arg(&bad)
+        .arg("--out")
+        .arg(d.join("m.safetensors"))
+        .output()
+        .unwrap();
+    refused(&o, &["appears twice", "more characters"]);
+}
+
+#[test]
+fn a_failed_fit_says_so_once_and_keeps_the_best_model() {
+    let d = dir("failed");
+    let data = small(&d);
+    let out = d.join("m.safetensors");
+    let o = bin()
+        .arg("fit")
+        .arg(&data)
+        .args(["--learning-rate", "1e30", "--epochs", "50", "--out"])
+        .arg(&out)
+        .output()
+        .unwrap();
+    let e = stderr(&o);
+    assert_eq!(o.status.code(), Some(1), "{e}");
+    assert_eq!(e.matches("training failed").count(), 1, "{e}");
+    assert!(e.contains("best model so far was written"), "{e}");
+    let o = bin().arg("evaluate").arg(&out).arg(&data).output().unwrap();
+    assert!(o.status.success(), "{}", stderr(&o));
+}
+
+#[test]
+fn resuming_from_weights_with_nan_is_refused() {
+    let d = dir("nan");
+    let data = small(&d);
+    let good = d.join("good.safetensors");
+    let o = bin()
+        .arg("fit")
+        .arg(&data)
+        .args(["--epochs", "1", "--out"])
+        .arg(&good)
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", stderr(&o));
+    // Put a NaN into one weight with the reference safetensors writer.
+    let bytes = std::fs::read(&good).unwrap();
+    let (_, md) = safetensors::SafeTensors::read_metadata(&bytes).unwrap();
+    let meta = md.metadata().clone();
+    let mut tensors: Vec<(String, candle_core::Tensor)> =
+        candle_core::safetensors::load_buffer(&bytes, &candle_core::Device::Cpu)
+            .unwrap()
+            .into_iter()
+            .collect();
+    let t = &mut tensors
+        .iter_mut()
+        .find(|(n, _)| n == "decoder.linear.bias")
+        .unwrap()
+        .1;
+    *t = (&*t * f64::NAN).unwrap();
+    let bad = d.join("bad.safetensors");
+    safetensors::tensor::serialize_to_file(tensors, meta, &bad).unwrap();
+    let o = bin()
+        .arg("fit")
+        .arg(&data)
+        .arg("--resume")
+        .arg(&bad)
+        .arg("--out")
+        .arg(d.join("more.safetensors"))
+        .output()
+        .unwrap();
+    refused(&o, &["decoder.linear.bias", "NaN"]);
+    assert!(!d.join("more.safetensors").exists());
+}
