@@ -1,40 +1,9 @@
 //! The command-line tool, run as a user would: on the demo data and on bad inputs.
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+#[path = "support/cli.rs"]
+mod cli;
 
-fn bin() -> Command {
-    let mut c = Command::new(env!("CARGO_BIN_EXE_neural-sde"));
-    c.env("RAYON_NUM_THREADS", "1");
-    c
-}
-
-fn dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("neural-sde-cli-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
-}
-
-fn run(c: &mut Command) -> Output {
-    c.output().unwrap()
-}
-
-fn stderr(o: &Output) -> String {
-    String::from_utf8_lossy(&o.stderr).into_owned()
-}
-
-/// Exit status 2, a single `error:` line, no panic or backtrace.
-fn assert_input_error(o: &Output, contains: &[&str]) {
-    let e = stderr(o);
-    assert_eq!(o.status.code(), Some(2), "stderr: {e}");
-    let lines: Vec<&str> = e.lines().filter(|l| !l.trim().is_empty()).collect();
-    assert_eq!(lines.len(), 1, "expected one line, got: {e}");
-    assert!(lines[0].starts_with("error:"), "{e}");
-    assert!(!e.contains("panicked") && !e.contains("backtrace"), "{e}");
-    for c in contains {
-        assert!(e.contains(c), "missing '{c}' in: {e}");
-    }
-}
+use cli::*;
+use std::path::Path;
 
 fn files(d: &Path) -> Vec<String> {
     let mut v: Vec<String> = std::fs::read_dir(d)

@@ -1,37 +1,11 @@
 //! Absurd values, odd tables and broken files on the command line: clear errors (exit 2, one
 //! short line) or a working model, never a crash, an exhausted memory or a file that cannot
 //! be read back.
+#[path = "support/cli.rs"]
+mod cli;
+
+use cli::*;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
-
-fn bin() -> Command {
-    let mut c = Command::new(env!("CARGO_BIN_EXE_neural-sde"));
-    c.env("RAYON_NUM_THREADS", "1");
-    c
-}
-
-fn dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("neural-sde-hostile-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
-}
-
-fn stderr(o: &Output) -> String {
-    String::from_utf8_lossy(&o.stderr).into_owned()
-}
-
-/// Exit 2, one line, no panic, naming `contains`.
-fn refused(o: &Output, contains: &[&str]) {
-    let e = stderr(o);
-    assert_eq!(o.status.code(), Some(2), "stderr: {e}");
-    assert_eq!(e.lines().count(), 1, "{e}");
-    assert!(!e.contains("panicked"), "{e}");
-    assert!(e.len() < 1200, "a {}-byte message", e.len());
-    for c in contains {
-        assert!(e.contains(c), "missing '{c}' in: {e}");
-    }
-}
 
 fn write_csv(d: &Path, name: &str, header: &str, rows: impl Iterator<Item = String>) -> PathBuf {
     let p = d.join(name);
@@ -50,7 +24,7 @@ fn small(d: &Path) -> PathBuf {
 }
 
 #[test]
-fn absurd_sizes_on_the_command_line_are_refused() {
+fn absurd_sizes_on_the_command_line_are_assert_input_error() {
     let d = dir("sizes");
     let data = small(&d);
     let out = d.join("m.safetensors");
@@ -70,7 +44,7 @@ fn absurd_sizes_on_the_command_line_are_refused() {
             .arg(&out)
             .output()
             .unwrap();
-        refused(&o, &["at most"]);
+        assert_input_error(&o, &["at most"]);
     }
     // Within each limit, but too many parameters together.
     let o = bin()
@@ -80,7 +54,7 @@ fn absurd_sizes_on_the_command_line_are_refused() {
         .arg(&out)
         .output()
         .unwrap();
-    refused(&o, &["parameters"]);
+    assert_input_error(&o, &["parameters"]);
     assert!(!out.exists());
     let o = bin()
         .arg("fit")
@@ -101,7 +75,7 @@ fn absurd_sizes_on_the_command_line_are_refused() {
             .args(&args[1..])
             .output()
             .unwrap();
-        refused(&o, &["at most"]);
+        assert_input_error(&o, &["at most"]);
     }
     for rows in ["1000000000", "18446744073709551615"] {
         let o = bin()
@@ -111,7 +85,7 @@ fn absurd_sizes_on_the_command_line_are_refused() {
             .arg(d.join("s.csv"))
             .output()
             .unwrap();
-        refused(&o, &["at most"]);
+        assert_input_error(&o, &["at most"]);
     }
     assert!(!d.join("s.csv").exists());
 }
@@ -144,7 +118,7 @@ fn odd_tables_are_refused_or_warned_about() {
                 .join(",")
         }),
     );
-    refused(
+    assert_input_error(
         &fit(&wide, &[]),
         &["more training rows than columns", "at least 41"],
     );
@@ -157,7 +131,7 @@ fn odd_tables_are_refused_or_warned_about() {
         (0..3).map(|i| vec![i.to_string(); 5000].join(",")),
     );
     let t0 = std::time::Instant::now();
-    refused(&fit(&huge, &[]), &["at most 1000 columns", "--columns"]);
+    assert_input_error(&fit(&huge, &[]), &["at most 1000 columns", "--columns"]);
     assert!(t0.elapsed().as_secs() < 30);
     // A few rows: it fits, with a warning.
     let tiny = write_csv(
@@ -180,7 +154,7 @@ fn odd_tables_are_refused_or_warned_about() {
         "1.5,2",
         (0..100).map(|i| format!("{},{}", i % 13, (i * 7) % 11)),
     );
-    refused(
+    assert_input_error(
         &fit(&numeric, &[]),
         &["only numbers", "--no-header", "--header"],
     );
@@ -194,7 +168,7 @@ fn odd_tables_are_refused_or_warned_about() {
         neural_sde::inspect_checkpoint(&out).unwrap().columns,
         vec!["1.5", "2"]
     );
-    refused(&fit(&numeric, &["--header", "--no-header"]), &["not both"]);
+    assert_input_error(&fit(&numeric, &["--header", "--no-header"]), &["not both"]);
 }
 
 #[test]
@@ -252,7 +226,7 @@ fn huge_and_nearly_constant_columns() {
         .arg(d.join("flat.safetensors"))
         .output()
         .unwrap();
-    refused(
+    assert_input_error(
         &o,
         &["column 'a' varies by less than 1e-12 relative to its size"],
     );
@@ -281,7 +255,7 @@ fn long_cells_and_names_are_clipped_in_messages() {
         .arg(d.join("m.safetensors"))
         .output()
         .unwrap();
-    refused(&o, &["line 7", "more characters"]);
+    assert_input_error(&o, &["line 7", "more characters"]);
     let name = "n".repeat(100_000);
     let bad = write_csv(
         &d,
@@ -296,7 +270,7 @@ fn long_cells_and_names_are_clipped_in_messages() {
         .arg(d.join("m.safetensors"))
         .output()
         .unwrap();
-    refused(&o, &["appears twice", "more characters"]);
+    assert_input_error(&o, &["appears twice", "more characters"]);
 }
 
 #[test]
@@ -320,7 +294,7 @@ fn a_failed_fit_says_so_once_and_keeps_the_best_model() {
 }
 
 #[test]
-fn resuming_from_weights_with_nan_is_refused() {
+fn resuming_from_weights_with_nan_is_assert_input_error() {
     let d = dir("nan");
     let data = small(&d);
     let good = d.join("good.safetensors");
@@ -358,6 +332,6 @@ fn resuming_from_weights_with_nan_is_refused() {
         .arg(d.join("more.safetensors"))
         .output()
         .unwrap();
-    refused(&o, &["decoder.linear.bias", "NaN"]);
+    assert_input_error(&o, &["decoder.linear.bias", "NaN"]);
     assert!(!d.join("more.safetensors").exists());
 }

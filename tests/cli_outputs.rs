@@ -1,28 +1,9 @@
 //! Outputs never destroy what the user has: run as a user would, on the command line.
+#[path = "support/cli.rs"]
+mod cli;
+
+use cli::*;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
-
-fn bin() -> Command {
-    let mut c = Command::new(env!("CARGO_BIN_EXE_neural-sde"));
-    c.env("RAYON_NUM_THREADS", "1");
-    c
-}
-
-fn dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("neural-sde-out-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
-}
-
-fn refused(o: &Output, contains: &[&str]) {
-    let e = String::from_utf8_lossy(&o.stderr);
-    assert_eq!(o.status.code(), Some(2), "stderr: {e}");
-    assert_eq!(e.lines().count(), 1, "{e}");
-    for c in contains {
-        assert!(e.contains(c), "missing '{c}' in: {e}");
-    }
-}
 
 fn table(d: &Path) -> PathBuf {
     let p = d.join("data.csv");
@@ -59,7 +40,7 @@ fn an_output_that_is_an_input_or_another_output_is_refused_before_any_work() {
         .arg(&data)
         .output()
         .unwrap();
-    refused(&o, &["--out", "same file as the data file"]);
+    assert_input_error(&o, &["--out", "same file as the data file"]);
     // Through another name of the same file (a hard link), not only the same string.
     let alias = d.join("alias.csv");
     std::fs::hard_link(&data, &alias).unwrap();
@@ -70,7 +51,7 @@ fn an_output_that_is_an_input_or_another_output_is_refused_before_any_work() {
         .arg(&alias)
         .output()
         .unwrap();
-    refused(&o, &["same file"]);
+    assert_input_error(&o, &["same file"]);
     let o = bin()
         .arg("fit")
         .arg(&data)
@@ -80,7 +61,7 @@ fn an_output_that_is_an_input_or_another_output_is_refused_before_any_work() {
         .arg(d.join("./data.csv"))
         .output()
         .unwrap();
-    refused(&o, &["--history", "same file"]);
+    assert_input_error(&o, &["--history", "same file"]);
     let o = bin()
         .arg("fit")
         .arg(&data)
@@ -90,7 +71,7 @@ fn an_output_that_is_an_input_or_another_output_is_refused_before_any_work() {
         .arg(d.join("m.safetensors"))
         .output()
         .unwrap();
-    refused(&o, &["--plot", "--out", "same file"]);
+    assert_input_error(&o, &["--plot", "--out", "same file"]);
     assert_eq!(std::fs::read(&data).unwrap(), before);
     assert!(!d.join("m.safetensors").exists());
     // The model as the samples' file.
@@ -103,7 +84,7 @@ fn an_output_that_is_an_input_or_another_output_is_refused_before_any_work() {
         .arg(&m)
         .output()
         .unwrap();
-    refused(&o, &["same file as the model"]);
+    assert_input_error(&o, &["same file as the model"]);
     // The checkpoint resumed from is an input too.
     let o = bin()
         .arg("fit")
@@ -114,7 +95,7 @@ fn an_output_that_is_an_input_or_another_output_is_refused_before_any_work() {
         .arg(&m)
         .output()
         .unwrap();
-    refused(&o, &["same file as the checkpoint to resume"]);
+    assert_input_error(&o, &["same file as the checkpoint to resume"]);
     assert_eq!(std::fs::read(&m).unwrap(), model_bytes);
 }
 
@@ -130,14 +111,14 @@ fn outputs_that_are_not_regular_files_are_refused_and_links_are_written_through(
         .arg(&d)
         .output()
         .unwrap();
-    refused(&o, &["a folder"]);
+    assert_input_error(&o, &["a folder"]);
     let o = bin()
         .arg("fit")
         .arg(&data)
         .args(["--out", "/dev/null"])
         .output()
         .unwrap();
-    refused(&o, &["/dev/null", "not a regular file"]);
+    assert_input_error(&o, &["/dev/null", "not a regular file"]);
     {
         use std::os::unix::fs::FileTypeExt;
         let t = std::fs::metadata("/dev/null").unwrap().file_type();
@@ -156,7 +137,7 @@ fn outputs_that_are_not_regular_files_are_refused_and_links_are_written_through(
         ])
         .output()
         .unwrap();
-    refused(&o, &["/proc", "cannot write in the folder"]);
+    assert_input_error(&o, &["/proc", "cannot write in the folder"]);
     assert!(t0.elapsed().as_secs() < 20, "it trained first");
     let o = bin()
         .arg("fit")
@@ -165,7 +146,7 @@ fn outputs_that_are_not_regular_files_are_refused_and_links_are_written_through(
         .arg(d.join("no/such/m.safetensors"))
         .output()
         .unwrap();
-    refused(&o, &["does not exist"]);
+    assert_input_error(&o, &["does not exist"]);
     // A symbolic link: the link stays, its target gets the model.
     let target = d.join("real.safetensors");
     std::fs::write(&target, b"old").unwrap();

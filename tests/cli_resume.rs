@@ -1,25 +1,11 @@
 //! Exact resume and deterministic checkpoints, on the command line as a user runs them.
+#[path = "support/cli.rs"]
+mod cli;
+
+use cli::*;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
-
-fn bin() -> Command {
-    let mut c = Command::new(env!("CARGO_BIN_EXE_neural-sde"));
-    c.env("RAYON_NUM_THREADS", "1");
-    c
-}
-
-fn dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("neural-sde-resume-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
-}
-
-fn ok(o: Output) -> Output {
-    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    o
-}
+use std::process::Output;
 
 fn table(d: &Path) -> PathBuf {
     let p = d.join("data.csv");

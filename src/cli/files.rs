@@ -69,8 +69,8 @@ impl Files {
                 if id.is_some() && id == identity(input) {
                     return Err(Failure::input(format!(
                         "{opt} {} is the same file as the {what} {}; writing it would destroy the {what}: choose another output name",
-                        super::shown(out),
-                        super::shown(input)
+                        out.display(),
+                        input.display()
                     )));
                 }
             }
@@ -78,8 +78,8 @@ impl Files {
                 if id.is_some() && id == identity(other) {
                     return Err(Failure::input(format!(
                         "{opt} {} and {other_opt} {} are the same file; give each output its own name",
-                        super::shown(out),
-                        super::shown(other)
+                        out.display(),
+                        other.display()
                     )));
                 }
             }

@@ -89,34 +89,16 @@ pub fn run() -> i32 {
     match result {
         Ok(()) => 0,
         Err(f) => {
-            // A safety net: messages clip what they echo, but never print megabytes.
+            // Messages clip what they echo; this only guards against printing megabytes.
             let mut m = f.message;
-            if m.len() > 4 * ECHO {
-                m = clip(&m);
+            if let Some((cut, _)) = m.char_indices().nth(2000) {
+                m.truncate(cut);
+                m.push('…');
             }
             eprintln!("error: {m}");
             f.code
         }
     }
-}
-
-/// At most this many characters of a name, path or cell are echoed in a message.
-const ECHO: usize = 200;
-
-/// `text` cut to [`ECHO`] characters (with the count of the rest).
-pub fn clip(text: &str) -> String {
-    let n = text.chars().count();
-    if n <= ECHO {
-        text.to_string()
-    } else {
-        let head: String = text.chars().take(ECHO).collect();
-        format!("{head}… ({} more characters)", n - ECHO)
-    }
-}
-
-/// A path as shown in messages (clipped).
-pub fn shown(path: &Path) -> String {
-    clip(&path.display().to_string())
 }
 
 /// The first line of `text`.
