@@ -269,6 +269,26 @@ fn bad_files_are_errors_that_say_what_is_wrong() {
         "{e}"
     );
 
+    // A scaler whose scale is not finite and positive would mirror or collapse a column.
+    for (name, bad) in [
+        ("negative", serde_json::json!(-1.0)),
+        ("zero", serde_json::json!(0.0)),
+        ("null", serde_json::Value::Null),
+    ] {
+        let p = d.join(format!("scale-{name}.safetensors"));
+        rewrite(&good, &p, |meta, _| {
+            let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+            c["header"]["scaler"]["scale"][1] = bad.clone();
+            meta.insert("neural-sde".into(), c.to_string());
+        });
+        let e = TabularModel::load(&p).unwrap_err().to_string();
+        assert!(
+            e.contains("scale") || e.contains("not valid"),
+            "{name}: {e}"
+        );
+        assert!(inspect_checkpoint(&p).is_err(), "{name}");
+    }
+
     let p = d.join("foreign.safetensors");
     rewrite(&good, &p, |meta, _| {
         meta.remove("neural-sde");
