@@ -9,7 +9,10 @@ use crate::nn::schedule::OptimizerConfig;
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default)]
 pub struct TrainConfig {
-    /// Maximum number of passes over the training rows.
+    /// Epochs to train (an epoch is one or more passes over the training rows, see
+    /// `min_steps_per_epoch`). The learning-rate schedule is planned over them when training
+    /// starts and keeps that plan when resumed; [`crate::Trainer::set_epochs`] only moves the
+    /// stop.
     pub epochs: usize,
     /// Rows per minibatch.
     pub batch_size: usize,
