@@ -106,7 +106,7 @@ impl RecoveryState {
         max_failures: usize,
         (what, detail): (&str, &str),
     ) -> Result<()> {
-        self.failures += 1;
+        self.failures = self.failures.saturating_add(1);
         good.restore(varmap, optimizer)?;
         self.lr_scale *= 0.5;
         if self.failures > max_failures {

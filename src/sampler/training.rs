@@ -300,7 +300,7 @@ impl Sampler {
             .optimizer
             .learning_rate_at(self.state.step, self.cfg.iterations as u64)
             * self.state.recovery.lr_scale;
-        self.state.step += 1;
+        self.state.step = self.state.step.saturating_add(1);
         let sde = Sde::new(&self.diffusion).with_control(self.control.as_ref());
         let (solver, terminal) = (&self.cfg.solver, &self.terminal);
         let outcome = gradient_step(
@@ -544,6 +544,20 @@ impl Sampler {
         s.optimizer
             .load_state(&moments, header.optimizer_steps)
             .map_err(|e| bad(path, e.to_string()))?;
+        let st = &header.state;
+        let r = st.recovery;
+        if st.step > i32::MAX as u64
+            || !(r.lr_scale.is_finite() && r.lr_scale > 0.0 && r.lr_scale <= 1.0)
+            || !header.timing.is_finite()
+        {
+            return Err(bad(
+                path,
+                format!(
+                    "the stored training state is invalid (step {}, learning-rate scale {}); train a new sampler",
+                    st.step, r.lr_scale
+                ),
+            ));
+        }
         s.state = header.state;
         s.state.seconds = header.timing;
         s.history = header.history;

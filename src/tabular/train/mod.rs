@@ -377,6 +377,17 @@ impl Trainer {
             train_cfg.batch_size,
         )
         .map_err(|e| invalid(e.to_string()))?;
+        let counts_ok = state.epoch <= 10_000_000
+            && state.best_epoch <= state.epoch
+            && state.epochs_since_best <= state.epoch
+            && state.step <= i32::MAX as u64
+            && state.planned_steps.is_none_or(|p| p <= i32::MAX as u64);
+        if !counts_ok {
+            return Err(invalid(format!(
+                "epoch {}, best epoch {}, epochs since best {}, step {}",
+                state.epoch, state.best_epoch, state.epochs_since_best, state.step
+            )));
+        }
         let r = state.recovery;
         if !(r.lr_scale.is_finite() && r.lr_scale > 0.0 && r.lr_scale <= 1.0) {
             return Err(invalid(format!("learning-rate scale {}", r.lr_scale)));
@@ -631,7 +642,7 @@ impl Trainer {
             .learning_rate_at(self.state.step, planned)
             * self.state.recovery.lr_scale;
         run.lr = lr;
-        self.state.step += 1;
+        self.state.step = self.state.step.saturating_add(1);
         let mut rows = Vec::with_capacity(idx.len() * d);
         for &i in &idx {
             rows.extend_from_slice(&self.train_rows[i * d..(i + 1) * d]);
@@ -653,7 +664,7 @@ impl Trainer {
             Ok((v, stats)) => {
                 run.sums.add(&v, stats.grad_norm);
                 let info = StepInfo {
-                    epoch: self.state.epoch + 1,
+                    epoch: self.state.epoch.saturating_add(1),
                     epochs: self.train_cfg.epochs,
                     batch: batch + 1,
                     batches,
@@ -723,7 +734,7 @@ impl Trainer {
     /// record, observers and the periodic checkpoint.
     fn end_epoch(&mut self) -> Result<EpochRecord> {
         let run = self.epoch_run.take().ok_or_else(no_epoch)?;
-        self.state.epoch += 1;
+        self.state.epoch = self.state.epoch.saturating_add(1);
         let train_elbo = run.sums.mean_elbo();
         let val_elbo = if self.val_rows.is_empty() {
             None
@@ -738,7 +749,7 @@ impl Trainer {
             self.state.epochs_since_best = 0;
             self.best = snapshot(self.model.model.varmap())?;
         } else {
-            self.state.epochs_since_best += 1;
+            self.state.epochs_since_best = self.state.epochs_since_best.saturating_add(1);
         }
         if self.state.finished.is_none() {
             self.state.finished = rule.after_epoch(&self.state);
