@@ -256,3 +256,34 @@ pub(crate) fn load_vars(
 pub(crate) fn parses_as<H: DeserializeOwned>(text: &str) -> serde_json::Result<()> {
     serde_json::from_str::<H>(text).map(|_| ())
 }
+
+/// Refuses to build a model whose configuration implies `implied` parameters (`None`: more
+/// than 2^64) when the file's weights (tensors not named with one of `state_prefixes`) are
+/// far fewer: a hostile header must not make a reader allocate much more than the file's
+/// size. A few times the file is allowed, so that a missing or mis-shaped tensor is named by
+/// the shape checks made after building.
+///
+/// # Errors
+/// [`Error::Checkpoint`] saying both counts.
+pub(crate) fn check_implied_size(
+    path: &Path,
+    bytes: &[u8],
+    implied: Option<u64>,
+    state_prefixes: &[&str],
+) -> Result<()> {
+    let held: u64 = tensor_sizes(path, bytes)?
+        .into_iter()
+        .filter(|(n, _)| !state_prefixes.iter().any(|p| n.starts_with(p)))
+        .map(|(_, s)| s as u64)
+        .sum();
+    if implied.is_none_or(|n| n > 4 * held + 1_000_000) {
+        return Err(bad(
+            path,
+            format!(
+                "the stored configuration implies {} parameters but the file holds {held}; the header does not match the weights",
+                implied.map_or("more than 2^64".to_string(), |n| n.to_string())
+            ),
+        ));
+    }
+    Ok(())
+}

@@ -457,22 +457,12 @@ impl Sampler {
             .config
             .validate()
             .map_err(|e| bad(path, format!("the stored settings are invalid ({e})")))?;
-        // Nothing is built from settings that need more parameters than the file holds.
-        let held: u64 = crate::nn::checkpoint::tensor_sizes(path, &bytes)?
-            .into_iter()
-            .filter(|(n, _)| !n.starts_with("optim."))
-            .map(|(_, s)| s as u64)
-            .sum();
-        let implied = header.config.control.parameter_count(header.dim, 0);
-        if implied.is_none_or(|n| n > 4 * held + 1_000_000) {
-            return Err(bad(
-                path,
-                format!(
-                    "the stored settings imply {} control parameters but the file holds {held}",
-                    implied.map_or("more than 2^64".to_string(), |n| n.to_string())
-                ),
-            ));
-        }
+        crate::nn::checkpoint::check_implied_size(
+            path,
+            &bytes,
+            header.config.control.parameter_count(header.dim, 0),
+            &["optim."],
+        )?;
         let (control, varmap) = Self::builtin_control(header.dim, &header.config)
             .map_err(|e| bad(path, format!("the stored settings are invalid ({e})")))?;
         Self::restore(path, &bytes, header, target, control, varmap)

@@ -294,11 +294,12 @@ impl TabularModel {
     /// Reads a checkpoint: the model with its weights, and every tensor of the file (the
     /// trainer takes its own from them). Every tensor must belong to the model, as a weight,
     /// an optimiser moment (`optim.m.`, `optim.v.`), a best weight (`best.`) or the weights
-    /// training had reached when they differ from the model's (`last.`).
+    /// training had reached when they differ from the model's (`last.`). Also returns the
+    /// header's timing, whose training seconds the trainer keeps.
     pub(crate) fn read(
         path: &Path,
         factory: Option<&PriorFactory>,
-    ) -> Result<(Self, HashMap<String, Tensor>)> {
+    ) -> Result<(Self, HashMap<String, Tensor>, Timing)> {
         let bad = |reason: String| Error::Checkpoint {
             path: path.to_path_buf(),
             reason,
@@ -322,26 +323,12 @@ impl TabularModel {
             .validate_for(header.data_dim)
             .map_err(|e| bad(format!("the stored configuration is invalid ({e})")))?;
         if !header.model_config.custom_prior {
-            // The model is built only when its configuration needs not much more than the
-            // file holds (a few times, for the messages below to name the wrong tensor), so a
-            // hostile header cannot make it allocate more than the file's size allows; each
-            // tensor's shape is checked once it is built.
-            let held: u64 = crate::nn::checkpoint::tensor_sizes(path, &bytes)?
-                .into_iter()
-                .filter(|(n, _)| {
-                    !["optim.", "best.", "last."]
-                        .iter()
-                        .any(|p| n.starts_with(p))
-                })
-                .map(|(_, s)| s as u64)
-                .sum();
-            let implied = header.model_config.parameter_count(header.data_dim);
-            if implied.is_none_or(|n| n > 4 * held + 1_000_000) {
-                return Err(bad(format!(
-                    "the stored configuration implies {} parameters but the file holds {held}; the header does not match the weights",
-                    implied.map_or("more than 2^64".to_string(), |n| n.to_string())
-                )));
-            }
+            crate::nn::checkpoint::check_implied_size(
+                path,
+                &bytes,
+                header.model_config.parameter_count(header.data_dim),
+                &["optim.", "best.", "last."],
+            )?;
         }
         let file = crate::nn::checkpoint::read_tensors(
             path,
@@ -374,7 +361,7 @@ impl TabularModel {
             columns: header.columns,
             history,
         };
-        Ok((model, file))
+        Ok((model, file, header.timing))
     }
 }
 

@@ -353,10 +353,8 @@ impl Trainer {
     }
 
     fn resume_from(path: &Path, table: &Table, prior: Option<&PriorFactory>) -> Result<Self> {
-        let (model, mut file) = TabularModel::read(path, prior)?;
+        let (model, mut file, timing) = TabularModel::read(path, prior)?;
         let (_, _, training): (_, _, TrainingHeader) =
-            crate::nn::checkpoint::read_header(path, crate::tabular::fitted::FORMAT)?;
-        let (_, _, timing): (_, _, TimingPart) =
             crate::nn::checkpoint::read_header(path, crate::tabular::fitted::FORMAT)?;
         let missing = || Error::Checkpoint {
             path: path.to_path_buf(),
@@ -403,18 +401,7 @@ impl Trainer {
                 ),
             });
         }
-        if let Some((name, _)) = sorted_vars(model.model.varmap())?
-            .into_iter()
-            .find(|(_, v)| !all_finite(v.as_tensor()))
-        {
-            return Err(Error::Checkpoint {
-                path: path.to_path_buf(),
-                reason: format!(
-                    "weight {name} holds NaN or infinite values; training cannot continue from it (resume from an earlier checkpoint)"
-                ),
-            });
-        }
-        if let Some(t) = timing.timing.training_seconds {
+        if let Some(t) = timing.training_seconds {
             state.seconds = t;
         }
         let vars = sorted_vars(model.model.varmap())?;
@@ -874,8 +861,7 @@ impl Trainer {
             &header,
             |text| {
                 parses_as::<crate::tabular::fitted::ModelHeader>(text)?;
-                parses_as::<TrainingHeader>(text)?;
-                parses_as::<TimingPart>(text)
+                parses_as::<TrainingHeader>(text)
             },
         )
     }
@@ -887,13 +873,6 @@ pub(crate) struct TrainingHeader {
     pub train_config: Option<TrainConfig>,
     pub state: Option<TrainState>,
     pub optimizer_steps: Option<u64>,
-}
-
-/// The timing field of a checkpoint header.
-#[derive(serde::Deserialize)]
-struct TimingPart {
-    #[serde(default)]
-    timing: crate::tabular::train::history::Timing,
 }
 
 /// The whole header of a training checkpoint: one flat JSON object.
