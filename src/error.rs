@@ -60,6 +60,9 @@ pub enum Error {
     /// A plot could not be drawn.
     #[error("cannot draw the plot: {0}")]
     Plot(String),
+    /// Processes training together disagree, or a reduction between them failed.
+    #[error("process group: {0}")]
+    Collective(String),
     /// Training stopped because it could not make progress.
     #[error("training failed: {0}")]
     Training(String),

@@ -79,6 +79,7 @@
 #![deny(missing_debug_implementations)]
 #![deny(unsafe_code)]
 
+pub mod collective;
 mod error;
 mod nn;
 #[cfg(feature = "plot")]
@@ -89,6 +90,7 @@ mod sde;
 mod tabular;
 mod util;
 
+pub use collective::{Collective, SingleProcess};
 pub use error::{Error, Result};
 pub use nn::ops::{self, Activation};
 pub use nn::optim::{AdamW, AdamWConfig, StepStats};
@@ -127,6 +129,7 @@ pub use util::limits;
 pub use util::precision::Precision;
 pub use util::rng::{generator, standard_normals, Generator};
 pub use util::stack::{run_deep, DEEP_STACK_BYTES};
+pub use util::threads::set_threads;
 
 /// The README's code blocks, compiled and run as doctests.
 #[cfg(doctest)]

@@ -10,15 +10,38 @@ use neural_sde::{EvalOptions, LatentConfig, TrainConfig, Trainer};
 /// paired comparison: the mean over held-out rows of (model − Gaussian) per dimension with
 /// its standard error (both evaluated on the same rows, so row-to-row spread cancels).
 fn compare(table: &neural_sde::Table, train_cfg: TrainConfig) -> Comparison {
+    compare_seeds(table, train_cfg, &[None])
+}
+
+/// As [`compare`], for the mean over fits with each seed of `seeds` (`None`: the config's
+/// own) of the per-row held-out log-likelihood: the gain of the default model averaged over
+/// training randomness, with its standard error over held-out rows.
+fn compare_seeds(
+    table: &neural_sde::Table,
+    train_cfg: TrainConfig,
+    seeds: &[Option<u64>],
+) -> Comparison {
     let (train, test) = baseline::split_mod5(table);
     let gauss_rows = baseline::gaussian_test_loglik_rows(&train, &test);
-    let mut trainer = Trainer::new(&train, LatentConfig::default(), train_cfg).unwrap();
-    trainer.fit().unwrap();
-    let model = trainer.into_model();
-    let eval = model.evaluate(&test, EvalOptions::new(128, 11)).unwrap();
-    let d = eval.dims as f64;
-    let diff: Vec<f64> = eval
-        .loglik_rows
+    let mut model_rows = vec![0.0; gauss_rows.len()];
+    let mut d = 0.0;
+    let mut model_per_dim = 0.0;
+    for seed in seeds {
+        let cfg = TrainConfig {
+            seed: seed.unwrap_or(train_cfg.seed),
+            ..train_cfg.clone()
+        };
+        let mut trainer = Trainer::new(&train, LatentConfig::default(), cfg).unwrap();
+        trainer.fit().unwrap();
+        let model = trainer.into_model();
+        let eval = model.evaluate(&test, EvalOptions::new(128, 11)).unwrap();
+        d = eval.dims as f64;
+        model_per_dim += eval.loglik_per_dim / seeds.len() as f64;
+        for (m, r) in model_rows.iter_mut().zip(&eval.loglik_rows) {
+            *m += r / seeds.len() as f64;
+        }
+    }
+    let diff: Vec<f64> = model_rows
         .iter()
         .zip(&gauss_rows)
         .map(|(m, g)| (m - g) / d)
@@ -27,7 +50,7 @@ fn compare(table: &neural_sde::Table, train_cfg: TrainConfig) -> Comparison {
     let gain = diff.iter().sum::<f64>() / n;
     let var = diff.iter().map(|x| (x - gain).powi(2)).sum::<f64>() / (n - 1.0);
     let c = Comparison {
-        model: eval.loglik_per_dim,
+        model: model_per_dim,
         gaussian: gauss_rows.iter().sum::<f64>() / n / d,
         gain,
         gain_se: (var / n).sqrt(),
@@ -59,7 +82,10 @@ fn iris_beats_full_covariance_gaussian() {
         g + sd
     );
     assert!((sd - (-0.1753928495)).abs() < 1e-8);
-    let c = compare(&t, TrainConfig::default());
+    // 30 held-out rows make one fit's gain noisy (measured over seeds 0–5: 1.9 to 5.7
+    // standard errors), so the claim is made for the default model averaged over three
+    // training seeds.
+    let c = compare_seeds(&t, TrainConfig::default(), &[Some(0), Some(1), Some(2)]);
     assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
     assert!((c.model - c.gaussian - c.gain).abs() < 1e-9, "{c:?}");
 }

@@ -140,17 +140,7 @@ impl AdamW {
     /// # Errors
     /// [`Error::Candle`] on tensor errors.
     pub fn grad_norm(&self, grads: &GradStore) -> Result<f64> {
-        let mut sq = 0.0;
-        for (_, var) in &self.vars {
-            if let Some(g) = grads.get(var.as_tensor()) {
-                sq += g
-                    .sqr()?
-                    .sum_all()?
-                    .to_dtype(DType::F64)?
-                    .to_scalar::<f64>()?;
-            }
-        }
-        Ok(sq.sqrt())
+        norm_of(&self.gradients(grads))
     }
 
     /// One update from `grads`, after scaling the gradient to norm at most `max_norm`
@@ -159,7 +149,32 @@ impl AdamW {
     /// # Errors
     /// [`Error::NonFinite`] (and no update) when the gradient norm is not finite.
     pub fn step(&mut self, grads: &GradStore, max_norm: Option<f64>) -> Result<StepStats> {
-        let norm = self.grad_norm(grads)?;
+        let grads = self.gradients(grads);
+        self.step_with(&grads, max_norm)
+    }
+
+    /// The gradient of each variable, in the optimiser's (name) order, detached from the
+    /// graph. candle does not detach the gradients of Vars: a weight gradient hᵀg still
+    /// references the forward graph through h, and would keep it alive.
+    pub(crate) fn gradients(&self, grads: &GradStore) -> Vec<Option<Tensor>> {
+        self.vars
+            .iter()
+            .map(|(_, var)| grads.get(var.as_tensor()).map(Tensor::detach))
+            .collect()
+    }
+
+    /// The variables' shapes and dtypes, in the optimiser's order.
+    pub(crate) fn var_tensors(&self) -> impl Iterator<Item = &Tensor> {
+        self.vars.iter().map(|(_, v)| v.as_tensor())
+    }
+
+    /// [`AdamW::step`] from gradients in the optimiser's order ([`AdamW::gradients`]).
+    pub(crate) fn step_with(
+        &mut self,
+        grads: &[Option<Tensor>],
+        max_norm: Option<f64>,
+    ) -> Result<StepStats> {
+        let norm = norm_of(grads)?;
         if !norm.is_finite() {
             return Err(Error::NonFinite {
                 what: "gradient".into(),
@@ -185,13 +200,10 @@ impl AdamW {
         let bc1 = 1.0 - c.beta1.powi(t);
         let bc2 = 1.0 - c.beta2.powi(t);
         for (i, (_, var)) in self.vars.iter().enumerate() {
-            let Some(g) = grads.get(var.as_tensor()) else {
+            let Some(g) = grads.get(i).and_then(Option::as_ref) else {
                 continue;
             };
-            // candle does not detach the gradients of Vars: a weight gradient hᵀg still
-            // references the forward graph through h. Detach it, or the moment estimates
-            // would keep every step's graph alive.
-            let g = g.detach().affine(scale, 0.0)?;
+            let g = g.affine(scale, 0.0)?;
             let m = ((&self.m[i] * c.beta1)? + (&g * (1.0 - c.beta1))?)?;
             let v = ((&self.v[i] * c.beta2)? + (g.sqr()? * (1.0 - c.beta2))?)?;
             let step = ((&m * (1.0 / bc1))? / ((&v * (1.0 / bc2))?.sqrt()? + c.eps)?)?;
@@ -254,4 +266,17 @@ impl AdamW {
         self.steps = steps;
         Ok(())
     }
+}
+
+/// Global L2 norm of a list of gradients (missing ones count as zero).
+fn norm_of(grads: &[Option<Tensor>]) -> Result<f64> {
+    let mut sq = 0.0;
+    for g in grads.iter().flatten() {
+        sq += g
+            .sqr()?
+            .sum_all()?
+            .to_dtype(DType::F64)?
+            .to_scalar::<f64>()?;
+    }
+    Ok(sq.sqrt())
 }

@@ -12,8 +12,9 @@ use serde::{Deserialize, Serialize};
 
 use super::config::SamplerConfig;
 use super::log_z::{estimate_log_z, EstimateOptions, LogZEstimate};
+use crate::collective::{check_group, on_root, share, Collective, SingleProcess};
 use crate::error::{Error, Result};
-use crate::nn::descent::gradient_step;
+use crate::nn::descent::group_gradient_step;
 use crate::nn::optim::AdamW;
 use crate::nn::params::{sorted_vars, ParamBuilder};
 use crate::nn::recovery::{GoodPoint, RecoveryState};
@@ -24,7 +25,7 @@ use crate::sde::diffusion::Diffusion;
 use crate::sde::drift::{Drift, TimeMlp};
 use crate::sde::objective::FreeEnergy;
 use crate::sde::solver::{simulate, Sde};
-use crate::util::rng::{generator, streams, Generator};
+use crate::util::rng::{generator, key2, streams};
 
 /// Kind of object in a sampler checkpoint (the file's `format` entry).
 pub(crate) const FORMAT: &str = "neural-sde-sampler";
@@ -59,10 +60,9 @@ pub trait SamplerObserver: Send {
 /// Everything needed to continue training a [`Sampler`] exactly where it stopped.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct SamplerState {
-    /// Optimiser steps taken (including skipped ones).
+    /// Optimiser steps taken (including skipped ones). The training noise needs no other
+    /// state: path `i` of step `s` draws from a generator keyed by `(s, i)`.
     pub step: u64,
-    /// Generator of the training noise.
-    pub noise_rng: Generator,
     /// Non-finite steps so far and the learning-rate scale they left.
     #[serde(flatten)]
     pub recovery: RecoveryState,
@@ -149,6 +149,7 @@ pub struct Sampler {
     observers: Vec<Box<dyn SamplerObserver>>,
     good: Option<GoodPoint>,
     clock: Instant,
+    group: Box<dyn Collective>,
 }
 
 impl std::fmt::Debug for Sampler {
@@ -215,7 +216,6 @@ impl Sampler {
             diffusion: Diffusion::constant(cfg.sigma)?,
             state: SamplerState {
                 step: 0,
-                noise_rng: generator(cfg.seed, streams::NOISE),
                 recovery: RecoveryState::default(),
                 finished: None,
                 seconds: 0.0,
@@ -230,6 +230,7 @@ impl Sampler {
             observers: Vec::new(),
             good: None,
             clock: Instant::now(),
+            group: Box::new(SingleProcess),
         })
     }
 
@@ -256,6 +257,30 @@ impl Sampler {
     /// Every applied step so far (across resumes).
     pub fn history(&self) -> &[SamplerRecord] {
         &self.history
+    }
+
+    /// Trains data-parallel in `group`: each process simulates its share of every batch of
+    /// paths (path `i` of step `s` draws the same noise on whichever process), the gradients
+    /// are summed over the group and every process applies the same update. Every process
+    /// must build its sampler with the same settings (checked here) and make the same calls;
+    /// only process 0 writes checkpoints.
+    ///
+    /// # Errors
+    /// [`Error::Collective`] when a process has other settings than process 0, or there are
+    /// more processes than paths per batch.
+    pub fn in_group(mut self, group: Box<dyn Collective>) -> Result<Self> {
+        let settings = serde_json::to_string(&self.cfg)?;
+        let fingerprint = settings.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| {
+            (h ^ u64::from(b)).wrapping_mul(0x0100_0000_01b3)
+        });
+        check_group(
+            group.as_ref(),
+            self.cfg.batch_size,
+            "paths per batch",
+            fingerprint,
+        )?;
+        self.group = group;
+        Ok(self)
     }
 
     /// Adds an observer of progress.
@@ -287,14 +312,21 @@ impl Sampler {
         }
         let d = self.target.dim();
         let dtype = self.cfg.precision.dtype();
-        let batch = self.cfg.batch_size;
-        let noise = self.cfg.solver.sample_noise(
-            &mut self.state.noise_rng,
-            batch,
-            d,
-            dtype,
-            &Device::Cpu,
-        )?;
+        let global = self.cfg.batch_size;
+        let mine = share(global, self.group.rank(), self.group.size());
+        let keys: Vec<u64> = mine.map(|i| key2(self.state.step, i as u64)).collect();
+        let noise = if keys.is_empty() {
+            None
+        } else {
+            Some(self.cfg.solver.sample_noise_keyed(
+                self.cfg.seed,
+                streams::NOISE_ROWS,
+                &keys,
+                d,
+                dtype,
+                &Device::Cpu,
+            )?)
+        };
         let lr = self
             .cfg
             .optimizer
@@ -303,18 +335,40 @@ impl Sampler {
         self.state.step = self.state.step.saturating_add(1);
         let sde = Sde::new(&self.diffusion).with_control(self.control.as_ref());
         let (solver, terminal) = (&self.cfg.solver, &self.terminal);
-        let outcome = gradient_step(
+        // Each process's loss is its paths' share of the batch mean (exactly the mean in a
+        // group of one).
+        let part = keys.len() as f64 / global as f64;
+        let outcome = group_gradient_step(
             &mut self.optimizer,
             lr,
             self.cfg.optimizer.max_grad_norm,
+            self.group.as_ref(),
+            3,
             move || {
-                let x0 = Tensor::zeros((batch, d), dtype, &Device::Cpu)?;
+                let Some(noise) = noise else {
+                    return Ok(None);
+                };
+                let x0 = Tensor::zeros((keys.len(), d), dtype, &Device::Cpu)?;
                 let paths = simulate(&sde, solver, &x0, &noise, None)?;
                 let fe = FreeEnergy::new(&paths, terminal, None)?;
-                let values = fe.values()?;
-                Ok((fe.loss, values))
+                let v = fe.values()?;
+                let loss = if part == 1.0 {
+                    fe.loss
+                } else {
+                    fe.loss.affine(part, 0.0)?
+                };
+                let figures = vec![v.loss * part, v.control_cost * part, v.terminal_cost * part];
+                Ok(Some((loss, (), figures)))
             },
-        );
+        )
+        .map(|(_, f, stats)| {
+            let v = crate::sde::objective::FreeEnergyValues {
+                loss: f[0],
+                control_cost: f[1],
+                terminal_cost: f[2],
+            };
+            (v, stats)
+        });
         match outcome {
             Ok((v, stats)) => {
                 let record = SamplerRecord {
@@ -418,6 +472,12 @@ impl Sampler {
     /// # Errors
     /// [`Error::Io`] or [`Error::Checkpoint`] if it cannot be written.
     pub fn save(&self, path: impl AsRef<Path>) -> Result<()> {
+        let path = path.as_ref();
+        let what = format!("the checkpoint {}", path.display());
+        on_root(self.group.as_ref(), &what, || self.write_checkpoint(path))
+    }
+
+    fn write_checkpoint(&self, path: &Path) -> Result<()> {
         let mut tensors: Vec<(String, Tensor)> = sorted_vars(&self.varmap)?
             .into_iter()
             .map(|(n, v)| (n, v.as_tensor().clone()))
@@ -436,7 +496,7 @@ impl Sampler {
             history: self.history.clone(),
         };
         crate::nn::checkpoint::write(
-            path.as_ref(),
+            path,
             FORMAT,
             tensors,
             &header,

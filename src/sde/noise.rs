@@ -67,27 +67,115 @@ impl BrownianIncrements {
             ));
         }
         crate::error::check_positive("t_end", t_end)?;
-        let h = t_end / n_steps as f64;
         let n = batch * dim;
         let xi1: Vec<Vec<f64>> = (0..n_steps).map(|_| standard_normals(rng, n)).collect();
-        let sh = h.sqrt();
-        let mut dw = Vec::with_capacity(n_steps);
-        for xi in &xi1 {
-            let v: Vec<f64> = xi.iter().map(|z| sh * z).collect();
-            dw.push(Tensor::from_vec(v, (batch, dim), dev)?.to_dtype(dtype)?);
+        let xi2 = with_area.then(|| {
+            (0..n_steps)
+                .map(|_| standard_normals(rng, n))
+                .collect::<Vec<_>>()
+        });
+        Self::from_normals(
+            &xi1,
+            xi2.as_deref(),
+            t_end / n_steps as f64,
+            (batch, dim),
+            dtype,
+            dev,
+        )
+    }
+
+    /// As [`BrownianIncrements::sample`], with path `i`'s normals drawn from its own
+    /// generator `keyed_generator(seed, stream, keys[i])`: a path's increments do not depend
+    /// on which other paths share the batch, so a minibatch split between processes (or
+    /// evaluated in chunks) draws exactly the noise it would draw whole.
+    #[allow(clippy::too_many_arguments)]
+    pub(crate) fn sample_keyed(
+        seed: u64,
+        stream: u64,
+        keys: &[u64],
+        dim: usize,
+        n_steps: usize,
+        t_end: f64,
+        with_area: bool,
+        dtype: DType,
+        dev: &Device,
+    ) -> Result<Self> {
+        let batch = keys.len();
+        if batch == 0 || dim == 0 || n_steps == 0 {
+            return Err(Error::config(
+                "batch, dim, n_steps",
+                format!("{batch}, {dim}, {n_steps}"),
+                "simulate at least 1 path of 1 dimension over 1 step",
+            ));
         }
-        let dz = if with_area {
-            let c = 0.5 * h * sh;
-            let r3 = 1.0 / 3f64.sqrt();
-            let mut dz = Vec::with_capacity(n_steps);
-            for xi in &xi1 {
-                let xi2 = standard_normals(rng, n);
-                let v: Vec<f64> = xi.iter().zip(&xi2).map(|(a, b)| c * (a + b * r3)).collect();
-                dz.push(Tensor::from_vec(v, (batch, dim), dev)?.to_dtype(dtype)?);
+        crate::error::check_positive("t_end", t_end)?;
+        let per = n_steps * dim;
+        let mut xi1 = vec![vec![0.0; batch * dim]; n_steps];
+        let mut xi2 = with_area.then(|| vec![vec![0.0; batch * dim]; n_steps]);
+        // Each path's draws depend only on its key, so they are made in parallel.
+        use rayon::prelude::*;
+        let drawn: Vec<(Vec<f64>, Vec<f64>)> = keys
+            .par_iter()
+            .with_min_len(16)
+            .map(|&key| {
+                let mut g = crate::util::rng::keyed_generator(seed, stream, key);
+                let a = standard_normals(&mut g, per);
+                let b = if with_area {
+                    standard_normals(&mut g, per)
+                } else {
+                    Vec::new()
+                };
+                (a, b)
+            })
+            .collect();
+        for (i, (a, b)) in drawn.iter().enumerate() {
+            for (k, step) in xi1.iter_mut().enumerate() {
+                step[i * dim..(i + 1) * dim].copy_from_slice(&a[k * dim..(k + 1) * dim]);
             }
-            Some(dz)
-        } else {
-            None
+            if let Some(xi2) = &mut xi2 {
+                for (k, step) in xi2.iter_mut().enumerate() {
+                    step[i * dim..(i + 1) * dim].copy_from_slice(&b[k * dim..(k + 1) * dim]);
+                }
+            }
+        }
+        Self::from_normals(
+            &xi1,
+            xi2.as_deref(),
+            t_end / n_steps as f64,
+            (batch, dim),
+            dtype,
+            dev,
+        )
+    }
+
+    /// Increments `ΔW = √h ξ₁` and, given `ξ₂`, `ΔZ = ½ h^{3/2} (ξ₁ + ξ₂/√3)`, one
+    /// `(batch, dim)` block of normals per step.
+    fn from_normals(
+        xi1: &[Vec<f64>],
+        xi2: Option<&[Vec<f64>]>,
+        h: f64,
+        shape: (usize, usize),
+        dtype: DType,
+        dev: &Device,
+    ) -> Result<Self> {
+        let sh = h.sqrt();
+        let mut dw = Vec::with_capacity(xi1.len());
+        for xi in xi1 {
+            let v: Vec<f64> = xi.iter().map(|z| sh * z).collect();
+            dw.push(Tensor::from_vec(v, shape, dev)?.to_dtype(dtype)?);
+        }
+        let dz = match xi2 {
+            Some(xi2) => {
+                let c = 0.5 * h * sh;
+                let r3 = 1.0 / 3f64.sqrt();
+                let mut dz = Vec::with_capacity(xi1.len());
+                for (xi, xi2) in xi1.iter().zip(xi2) {
+                    let v: Vec<f64> = xi.iter().zip(xi2).map(|(a, b)| c * (a + b * r3)).collect();
+                    dz.push(Tensor::from_vec(v, shape, dev)?.to_dtype(dtype)?);
+                }
+                Some(dz)
+            }
+            None => None,
         };
         Ok(Self { dw, dz, step: h })
     }

@@ -26,11 +26,20 @@ impl Standardizer {
     /// [`Error::Data`] naming a column that is constant, or varies by less than 10⁻¹² of its
     /// size, which cannot be standardised.
     pub fn fit(table: &Table) -> Result<Self> {
+        let all: Vec<usize> = (0..table.n_rows()).collect();
+        Self::fit_rows(table, &all)
+    }
+
+    /// [`Standardizer::fit`] on the rows `rows` of `table`, without copying them.
+    ///
+    /// # Errors
+    /// As [`Standardizer::fit`].
+    pub(crate) fn fit_rows(table: &Table, rows: &[usize]) -> Result<Self> {
         let d = table.n_cols();
         let mut mean = vec![0.0; d];
         let mut scale = vec![0.0; d];
         for j in 0..d {
-            let col = table.column(j);
+            let col: Vec<f64> = rows.iter().map(|&i| table.row(i)[j]).collect();
             let (mut m, mut s) = mean_sd(&col, 1.0);
             if !(m.is_finite() && s.is_finite()) {
                 let big = col.iter().fold(0.0f64, |a, v| a.max(v.abs()));
@@ -69,6 +78,15 @@ impl Standardizer {
             .enumerate()
             .map(|(k, v)| (v - self.mean[k % d]) / self.scale[k % d])
             .collect()
+    }
+
+    /// Appends the standardised values of one row to `out`.
+    pub(crate) fn transform_row_into(&self, row: &[f64], out: &mut Vec<f64>) {
+        out.extend(
+            row.iter()
+                .zip(self.mean.iter().zip(&self.scale))
+                .map(|(v, (m, s))| (v - m) / s),
+        );
     }
 
     /// Back to the data's units, row-major.

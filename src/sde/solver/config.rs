@@ -103,6 +103,30 @@ impl SolverConfig {
             dev,
         )
     }
+
+    /// As [`SolverConfig::sample_noise`], path `i` drawing from its own keyed generator
+    /// (see `BrownianIncrements::sample_keyed`).
+    pub(crate) fn sample_noise_keyed(
+        &self,
+        seed: u64,
+        stream: u64,
+        keys: &[u64],
+        dim: usize,
+        dtype: DType,
+        dev: &Device,
+    ) -> Result<BrownianIncrements> {
+        BrownianIncrements::sample_keyed(
+            seed,
+            stream,
+            keys,
+            dim,
+            self.n_steps,
+            self.t_end,
+            self.scheme.needs_area(),
+            dtype,
+            dev,
+        )
+    }
 }
 
 /// Which implementation [`crate::simulate`] uses.

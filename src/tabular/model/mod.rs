@@ -29,7 +29,7 @@ use crate::sde::noise::BrownianIncrements;
 use crate::sde::objective::FreeEnergy;
 use crate::sde::solver::{simulate, Scheme, Sde, SolverConfig};
 use crate::util::precision::Precision;
-use crate::util::rng::{generator, standard_normals, streams};
+use crate::util::rng::{generator, key2, standard_normals, streams};
 use crate::util::stack::run_deep;
 
 /// Settings of a [`LatentModel`].
@@ -460,6 +460,31 @@ impl LatentModel {
             self.dtype(),
             &self.device,
         )?;
+        self.free_energy_with(y, noise)
+    }
+
+    /// [`LatentModel::free_energy`] with row `i`'s noise from the generator keyed by
+    /// `keys[i]` (training: the step and the row's index), so a minibatch split between
+    /// processes draws the noise it would draw whole.
+    pub(crate) fn free_energy_keyed(
+        &self,
+        y: &Tensor,
+        seed: u64,
+        keys: &[u64],
+    ) -> Result<FreeEnergy> {
+        let noise = &self.cfg.solver.sample_noise_keyed(
+            seed,
+            streams::NOISE_ROWS,
+            keys,
+            self.latent_dim,
+            self.dtype(),
+            &self.device,
+        )?;
+        self.free_energy_with(y, noise)
+    }
+
+    fn free_energy_with(&self, y: &Tensor, noise: &BrownianIncrements) -> Result<FreeEnergy> {
+        let batch = y.dim(0)?;
         let x0 = Tensor::zeros((batch, self.latent_dim), self.dtype(), &self.device)?;
         let paths = simulate(&self.sde(&self.nets), &self.cfg.solver, &x0, noise, Some(y))?;
         FreeEnergy::new(&paths, &self.nets.nll, Some(y))
@@ -523,6 +548,44 @@ impl LatentModel {
         let noise = self.cfg.solver.sample_noise(
             rng,
             r * paths,
+            self.latent_dim,
+            self.dtype(),
+            &self.device,
+        )?;
+        self.path_terms(&y, &noise)
+    }
+
+    /// [`LatentModel::posterior_terms`] with path `p` of row `i` drawing from the generator
+    /// keyed by `(row_keys[i], p)`: a row's terms do not depend on the chunk or process that
+    /// evaluates it.
+    pub(crate) fn posterior_terms_keyed(
+        &self,
+        rows: &[f64],
+        paths: usize,
+        seed: u64,
+        row_keys: &[u64],
+    ) -> Result<PathTerms> {
+        let d = self.data_dim;
+        if rows.len() != row_keys.len() * d || rows.is_empty() {
+            return Err(Error::shape(
+                "standardised rows (one key per row)",
+                row_keys.len() * d,
+                rows.len(),
+            ));
+        }
+        let mut rep = Vec::with_capacity(rows.len() * paths);
+        let mut keys = Vec::with_capacity(row_keys.len() * paths);
+        for (row, &k) in rows.chunks_exact(d).zip(row_keys) {
+            for p in 0..paths {
+                rep.extend_from_slice(row);
+                keys.push(key2(k, p as u64));
+            }
+        }
+        let y = Tensor::from_vec(rep, (keys.len(), d), &self.device)?.to_dtype(self.dtype())?;
+        let noise = self.cfg.solver.sample_noise_keyed(
+            seed,
+            streams::EVAL_ROWS,
+            &keys,
             self.latent_dim,
             self.dtype(),
             &self.device,

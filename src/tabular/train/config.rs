@@ -20,6 +20,11 @@ pub struct TrainConfig {
     /// passes over the rows (each freshly shuffled), so early stopping and the schedule see
     /// comparable amounts of training whatever the table size.
     pub min_steps_per_epoch: usize,
+    /// Largest number of optimiser steps per epoch: on big tables (a pass longer than this)
+    /// an epoch is this many minibatches of a fresh shuffle, so validation, the history and
+    /// early stopping come every fixed number of steps however many rows there are.
+    #[serde(default = "default_max_steps_per_epoch")]
+    pub max_steps_per_epoch: usize,
     /// AdamW, its schedule (warm-up, then cosine decay over the planned epochs) and gradient
     /// clipping. Its fields sit at the top level of the serialised config.
     #[serde(flatten)]
@@ -27,6 +32,11 @@ pub struct TrainConfig {
     /// Share of the rows held out for validation (early stopping); 0 trains on all rows and
     /// stops on the training ELBO.
     pub validation_fraction: f64,
+    /// Largest number of held-out rows the validation ELBO is computed on each epoch (a
+    /// seeded subset of them; all of them when there are fewer), so that validation costs the
+    /// same on big tables as on small ones.
+    #[serde(default = "default_max_validation_rows")]
+    pub max_validation_rows: usize,
     /// Posterior paths per validation row (the validation ELBO averages them).
     pub validation_paths: usize,
     /// Epochs without a better validation ELBO before stopping.
@@ -48,8 +58,10 @@ impl Default for TrainConfig {
             epochs: 300,
             batch_size: 64,
             min_steps_per_epoch: 50,
+            max_steps_per_epoch: default_max_steps_per_epoch(),
             optimizer: OptimizerConfig::default(),
             validation_fraction: 0.2,
+            max_validation_rows: default_max_validation_rows(),
             validation_paths: 4,
             patience: 30,
             min_improvement: 1e-3,
@@ -58,6 +70,14 @@ impl Default for TrainConfig {
             seed: 0,
         }
     }
+}
+
+fn default_max_steps_per_epoch() -> usize {
+    1000
+}
+
+fn default_max_validation_rows() -> usize {
+    2048
 }
 
 impl TrainConfig {
@@ -81,6 +101,23 @@ impl TrainConfig {
                 "min_steps_per_epoch",
                 0,
                 "use at least 1 step per epoch",
+            ));
+        }
+        if self.max_steps_per_epoch < self.min_steps_per_epoch {
+            return Err(Error::config(
+                "max_steps_per_epoch",
+                self.max_steps_per_epoch,
+                format!(
+                    "must be at least min_steps_per_epoch ({})",
+                    self.min_steps_per_epoch
+                ),
+            ));
+        }
+        if self.max_validation_rows == 0 {
+            return Err(Error::config(
+                "max_validation_rows",
+                0,
+                "validate on at least 1 row",
             ));
         }
         self.optimizer.validate()?;

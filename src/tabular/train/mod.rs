@@ -3,6 +3,7 @@
 mod config;
 pub(crate) mod history;
 mod observer;
+mod rows;
 mod state;
 mod stop;
 
@@ -17,8 +18,9 @@ use std::time::Instant;
 use candle_core::{Device, Tensor};
 use rand::seq::SliceRandom;
 
+use crate::collective::{check_group, on_root, share, Collective, SingleProcess};
 use crate::error::{Error, Result};
-use crate::nn::descent::gradient_step;
+use crate::nn::descent::group_gradient_step;
 use crate::nn::optim::AdamW;
 use crate::nn::params::sorted_vars;
 use crate::nn::recovery::{restore, snapshot, GoodPoint, RecoveryState, Snapshot};
@@ -29,7 +31,8 @@ use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory};
 use crate::tabular::scaler::Standardizer;
 use crate::tabular::split::split_rows;
 use crate::tabular::table::Table;
-use crate::util::rng::{generator, streams};
+use crate::util::rng::{generator, key2, streams};
+use rows::StoredRows;
 use stop::StopRule;
 
 /// The epoch in progress: its minibatches, where it is, and the point non-finite steps go
@@ -123,20 +126,33 @@ fn no_epoch() -> Error {
     Error::Training("no epoch is in progress".into())
 }
 
-/// Standardised training and validation rows of `table` for the seeded split of `cfg`.
-fn standardised_split(
+/// Training rows and the validation rows used for early stopping (a seeded subset of at
+/// most `max_validation_rows` of the held-out rows), standardised by `scaler`.
+fn stored_split(
     table: &Table,
     scaler: &Standardizer,
     cfg: &TrainConfig,
-) -> Result<(Vec<f64>, Vec<f64>)> {
+    dtype: candle_core::DType,
+) -> Result<(StoredRows, StoredRows)> {
     let (train_idx, val_idx) = split_rows(table.n_rows(), cfg.validation_fraction, cfg.seed)?;
-    let train = scaler.transform(&table.take_rows(&train_idx)?);
-    let val = if val_idx.is_empty() {
-        Vec::new()
-    } else {
-        scaler.transform(&table.take_rows(&val_idx)?)
-    };
+    let train = StoredRows::new(table, scaler, &train_idx, dtype);
+    let val = StoredRows::new(
+        table,
+        scaler,
+        &validation_subset(val_idx, cfg.max_validation_rows, cfg.seed),
+        dtype,
+    );
     Ok((train, val))
+}
+
+/// At most `max` of the validation rows `idx`, chosen by a seeded shuffle, in table order.
+fn validation_subset(mut idx: Vec<usize>, max: usize, seed: u64) -> Vec<usize> {
+    if idx.len() > max {
+        idx.shuffle(&mut generator(seed, streams::VALIDATION_SUBSET));
+        idx.truncate(max);
+        idx.sort_unstable();
+    }
+    idx
 }
 
 /// Trains a [`LatentModel`] on a table (see [`TrainConfig`]): minibatches, AdamW with
@@ -161,9 +177,12 @@ fn standardised_split(
 pub struct Trainer {
     model: TabularModel,
     train_cfg: TrainConfig,
-    train_rows: Vec<f64>,
-    val_rows: Vec<f64>,
+    train_rows: StoredRows,
+    val_rows: StoredRows,
     optimizer: AdamW,
+    /// The processes training this model together (one, unless set by
+    /// [`Trainer::in_group`]).
+    group: Box<dyn Collective>,
     state: TrainState,
     best: Snapshot,
     observers: Vec<Box<dyn Observer>>,
@@ -184,6 +203,13 @@ impl std::fmt::Debug for Trainer {
             .field("state", &self.state)
             .finish()
     }
+}
+
+/// FNV-1a hash of bytes.
+fn fnv1a(bytes: &[u8]) -> u64 {
+    bytes.iter().fold(0xcbf2_9ce4_8422_2325, |h, &b| {
+        (h ^ u64::from(b)).wrapping_mul(0x0100_0000_01b3)
+    })
 }
 
 /// FNV-1a hash of the table's bit patterns and shape.
@@ -275,17 +301,17 @@ impl Trainer {
                 ),
             });
         }
-        let scaler = Standardizer::fit(&table.take_rows(&train_idx)?)?;
-        let (train_rows, val_rows) = standardised_split(table, &scaler, &train_cfg)?;
+        let scaler = Standardizer::fit_rows(table, &train_idx)?;
         let model = LatentModel::build(&model_cfg, table.n_cols(), train_cfg.seed, prior)?;
-        model.init_from_data(&train_rows)?;
+        let (train_rows, val_rows) = stored_split(table, &scaler, &train_cfg, model.dtype())?;
+        drop((train_idx, val_idx));
+        model.init_from_data(&train_rows.slice_f64(0..train_rows.len()).0)?;
         let optimizer = AdamW::new(model.varmap(), train_cfg.optimizer.adamw.clone())?;
         let best = snapshot(model.varmap())?;
         let state = TrainState {
             epoch: 0,
             step: 0,
             data_rng: generator(train_cfg.seed, streams::DATA),
-            noise_rng: generator(train_cfg.seed, streams::NOISE),
             best_elbo: None,
             best_epoch: 0,
             epochs_since_best: 0,
@@ -307,6 +333,7 @@ impl Trainer {
             train_rows,
             val_rows,
             optimizer,
+            group: Box::new(SingleProcess),
             state,
             best,
             observers: Vec::new(),
@@ -319,12 +346,17 @@ impl Trainer {
         trainer.state.planned_steps = Some(trainer.planned_steps());
         // The initial model is the rows' Gaussian fit: its ELBO is the bar to beat, so
         // early stopping never keeps weights worse than the starting point.
-        let rows = if trainer.val_rows.is_empty() {
-            &trainer.train_rows
+        let initial = if trainer.val_rows.is_empty() {
+            let n = trainer.train_rows.len();
+            let some = validation_subset(
+                (0..n).collect(),
+                trainer.train_cfg.max_validation_rows,
+                trainer.train_cfg.seed,
+            );
+            trainer.elbo_of(&trainer.train_rows, &some)?
         } else {
-            &trainer.val_rows
+            trainer.elbo_of(&trainer.val_rows, &[])?
         };
-        let initial = trainer.elbo_of(rows)?;
         if initial.is_finite() {
             trainer.state.best_elbo = Some(initial);
         }
@@ -459,7 +491,8 @@ impl Trainer {
                 ),
             });
         }
-        let (train_rows, val_rows) = standardised_split(table, &model.scaler, &train_cfg)?;
+        let (train_rows, val_rows) =
+            stored_split(table, &model.scaler, &train_cfg, model.model.dtype())?;
         let mut optimizer = AdamW::new(model.model.varmap(), train_cfg.optimizer.adamw.clone())?;
         optimizer.load_state(&moments, optimizer_steps)?;
         Ok(Self {
@@ -468,6 +501,7 @@ impl Trainer {
             train_rows,
             val_rows,
             optimizer,
+            group: Box::new(SingleProcess),
             state,
             best,
             observers: Vec::new(),
@@ -477,6 +511,38 @@ impl Trainer {
             last: (!last.is_empty()).then_some(last),
             warnings: Vec::new(),
         })
+    }
+
+    /// Trains data-parallel in `group` (for instance every process of an MPI job): each
+    /// process computes the gradient of its share of every minibatch, the gradients are
+    /// summed over the group, and every process applies the same update, so all of them hold
+    /// the same model. Every process must build its trainer from the same table and settings
+    /// (checked here) and make the same calls; only process 0 writes checkpoints.
+    ///
+    /// A row's noise is keyed by the row and the step, not by the process, so the model is
+    /// the one a single process trains on the same minibatches, up to the rounding of the
+    /// sums (measured in the contributor guide).
+    ///
+    /// # Errors
+    /// [`Error::Collective`] when a process holds another table or other settings than
+    /// process 0, or there are more processes than training rows.
+    pub fn in_group(mut self, group: Box<dyn Collective>) -> Result<Self> {
+        let settings = serde_json::to_string(&(&self.train_cfg, self.model.model.config()))?;
+        let fingerprint =
+            crate::util::rng::key2(self.state.table_fingerprint, fnv1a(settings.as_bytes()));
+        check_group(
+            group.as_ref(),
+            self.train_rows.len(),
+            "training rows",
+            fingerprint,
+        )?;
+        self.group = group;
+        Ok(self)
+    }
+
+    /// The processes training this model (one unless [`Trainer::in_group`] set a group).
+    pub fn group(&self) -> &dyn Collective {
+        self.group.as_ref()
     }
 
     /// Adds an observer of progress.
@@ -549,9 +615,15 @@ impl Trainer {
     }
 
     /// Passes over the training rows per epoch and minibatches per epoch.
+    /// On big tables (a pass longer than `max_steps_per_epoch` minibatches) an epoch is
+    /// that many minibatches of a fresh shuffle, so validation, history and early stopping
+    /// come every fixed number of steps: `(1, max_steps_per_epoch)`.
     fn epoch_shape(&self) -> (usize, usize) {
-        let n = self.train_rows.len() / self.model.columns.len();
+        let n = self.train_rows.len();
         let per_pass = n.div_ceil(self.train_cfg.batch_size);
+        if per_pass > self.train_cfg.max_steps_per_epoch {
+            return (1, self.train_cfg.max_steps_per_epoch);
+        }
         let passes = self.train_cfg.min_steps_per_epoch.div_ceil(per_pass).max(1);
         (passes, passes * per_pass)
     }
@@ -573,23 +645,51 @@ impl Trainer {
         self.planned_steps().div_ceil(per) as usize
     }
 
-    /// Mean ELBO per row of standardised `rows`, with fixed noise (the same every epoch).
-    fn elbo_of(&self, rows: &[f64]) -> Result<f64> {
+    /// Mean ELBO per row of the stored rows at `positions` (all of them when empty), with
+    /// fixed noise keyed by each row (the same every epoch, whichever process evaluates the
+    /// row). The rows are shared out over the group and the sums reduced.
+    fn elbo_of(&self, rows: &StoredRows, positions: &[usize]) -> Result<f64> {
         let d = self.model.columns.len();
         let k = self.train_cfg.validation_paths;
-        let mut rng = generator(self.train_cfg.seed, streams::EVAL);
-        let (mut sum, mut n) = (0.0, 0usize);
+        let n = if positions.is_empty() {
+            rows.len()
+        } else {
+            positions.len()
+        };
+        let mine = share(n, self.group.rank(), self.group.size());
         let chunk_rows = self
             .model
             .model
             .config()
-            .chunk_rows(d, k, (4096 / k).max(1));
-        for chunk in rows.chunks(chunk_rows * d) {
-            let t = self.model.model.posterior_terms(chunk, k, &mut rng)?;
-            sum += t.elbo.iter().sum::<f64>();
-            n += t.elbo.len();
+            .chunk_rows(d, k, (4096 / k).max(1))
+            .max(1);
+        let mut sums = [0.0, 0.0];
+        let mut at = mine.start;
+        while at < mine.end {
+            let end = (at + chunk_rows).min(mine.end);
+            let (values, keys) = if positions.is_empty() {
+                let (v, k) = rows.slice_f64(at..end);
+                (v, k.to_vec())
+            } else {
+                let mut v = Vec::with_capacity((end - at) * d);
+                let mut keys = Vec::with_capacity(end - at);
+                for &p in &positions[at..end] {
+                    let (row, key) = rows.slice_f64(p..p + 1);
+                    v.extend(row);
+                    keys.extend_from_slice(key);
+                }
+                (v, keys)
+            };
+            let t =
+                self.model
+                    .model
+                    .posterior_terms_keyed(&values, k, self.train_cfg.seed, &keys)?;
+            sums[0] += t.elbo.iter().sum::<f64>();
+            sums[1] += t.elbo.len() as f64;
+            at = end;
         }
-        Ok(sum / n as f64)
+        self.group.sum_f64(&mut sums)?;
+        Ok(sums[0] / sums[1])
     }
 
     /// Runs one optimiser step on the next minibatch, starting an epoch first if none is in
@@ -622,7 +722,6 @@ impl Trainer {
         let batches = run.minibatches.len();
         let idx = std::mem::take(&mut run.minibatches[batch]);
         run.next += 1;
-        let d = self.model.columns.len();
         let lr = self
             .train_cfg
             .optimizer
@@ -630,23 +729,48 @@ impl Trainer {
             * self.state.recovery.lr_scale;
         run.lr = lr;
         self.state.step = self.state.step.saturating_add(1);
-        let mut rows = Vec::with_capacity(idx.len() * d);
-        for &i in &idx {
-            rows.extend_from_slice(&self.train_rows[i * d..(i + 1) * d]);
-        }
         let model = &self.model.model;
-        let y = Tensor::from_vec(rows, (idx.len(), d), &Device::Cpu)?.to_dtype(model.dtype())?;
-        let noise_rng = &mut self.state.noise_rng;
-        let outcome = gradient_step(
+        let global = idx.len();
+        let mine = &idx[share(global, self.group.rank(), self.group.size())];
+        let local = if mine.is_empty() {
+            None
+        } else {
+            Some(self.train_rows.gather(mine, model.dtype(), &Device::Cpu)?)
+        };
+        // Each process's loss is its rows' share of the minibatch mean, so the parts sum to
+        // the mean; in a group of one the factor is exactly 1.
+        let part = mine.len() as f64 / global as f64;
+        let (seed, step) = (self.train_cfg.seed, self.state.step);
+        let outcome = group_gradient_step(
             &mut self.optimizer,
             lr,
             self.train_cfg.optimizer.max_grad_norm,
+            self.group.as_ref(),
+            3,
             move || {
-                let fe = model.free_energy(&y, noise_rng)?;
+                let Some((y, rows)) = local else {
+                    return Ok(None);
+                };
+                let keys: Vec<u64> = rows.iter().map(|&r| key2(step, r)).collect();
+                let fe = model.free_energy_keyed(&y, seed, &keys)?;
                 let v = fe.values()?;
-                Ok((fe.loss, v))
+                let loss = if part == 1.0 {
+                    fe.loss
+                } else {
+                    fe.loss.affine(part, 0.0)?
+                };
+                let figures = vec![v.loss * part, v.control_cost * part, v.terminal_cost * part];
+                Ok(Some((loss, (), figures)))
             },
-        );
+        )
+        .map(|(_, f, stats)| {
+            let v = FreeEnergyValues {
+                loss: f[0],
+                control_cost: f[1],
+                terminal_cost: f[2],
+            };
+            (v, stats)
+        });
         match outcome {
             Ok((v, stats)) => {
                 run.sums.add(&v, stats.grad_norm);
@@ -695,7 +819,7 @@ impl Trainer {
 
     /// Draws the epoch's minibatches and records the point non-finite steps go back to.
     fn begin_epoch(&mut self) -> Result<EpochRun> {
-        let n = self.train_rows.len() / self.model.columns.len();
+        let n = self.train_rows.len();
         let (passes, batches) = self.epoch_shape();
         let mut minibatches: Vec<Vec<usize>> = Vec::with_capacity(batches);
         for _ in 0..passes {
@@ -704,6 +828,7 @@ impl Trainer {
             minibatches.extend(
                 order
                     .chunks(self.train_cfg.batch_size)
+                    .take(batches)
                     .map(<[usize]>::to_vec),
             );
         }
@@ -726,7 +851,7 @@ impl Trainer {
         let val_elbo = if self.val_rows.is_empty() {
             None
         } else {
-            Some(self.elbo_of(&self.val_rows)?)
+            Some(self.elbo_of(&self.val_rows, &[])?)
         };
         let score = val_elbo.unwrap_or(train_elbo);
         let rule = StopRule(&self.train_cfg);
@@ -821,17 +946,24 @@ impl Trainer {
     }
 
     /// Writes a checkpoint (weights, optimiser moments, best weights, configuration, scaler,
-    /// columns, state, history) atomically to `path`.
+    /// columns, state, history) atomically to `path`. In a group of processes only process 0
+    /// writes, and every process returns the outcome.
     ///
     /// # Errors
     /// [`Error::Io`] or [`Error::Checkpoint`] if it cannot be written.
     pub fn save(&self, path: impl AsRef<Path>) -> Result<()> {
+        let path = path.as_ref();
         if self.epoch_run.is_some() {
             return Err(Error::Training(format!(
                 "cannot save {} in the middle of an epoch; save after Trainer::run_epoch or Trainer::fit, or when Trainer::step returns the epoch's record",
-                path.as_ref().display()
+                path.display()
             )));
         }
+        let what = format!("the checkpoint {}", path.display());
+        on_root(self.group.as_ref(), &what, || self.write_checkpoint(path))
+    }
+
+    fn write_checkpoint(&self, path: &Path) -> Result<()> {
         let mut tensors = self.model.tensors()?;
         for (n, m) in self.optimizer.state_tensors() {
             tensors.push((format!("optim.{n}"), m));
@@ -855,7 +987,7 @@ impl Trainer {
         };
         use crate::nn::checkpoint::parses_as;
         crate::nn::checkpoint::write(
-            path.as_ref(),
+            path,
             crate::tabular::fitted::FORMAT,
             tensors,
             &header,

@@ -13,10 +13,9 @@ pub struct TrainState {
     pub epoch: usize,
     /// Optimiser steps taken (including skipped ones).
     pub step: u64,
-    /// Generator of minibatch order.
+    /// Generator of minibatch order. (The training noise needs no state: each row's noise
+    /// at each step comes from a generator keyed by the step and the row.)
     pub data_rng: Generator,
-    /// Generator of the training noise.
-    pub noise_rng: Generator,
     /// Best validation (or training) ELBO per row so far.
     pub best_elbo: Option<f64>,
     /// Epoch of the best ELBO.
