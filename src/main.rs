@@ -9,10 +9,7 @@ static GLOBAL: mimalloc::MiMalloc = mimalloc::MiMalloc;
 mod cli;
 
 fn main() {
-    // candle re-reads the CPU count on every matrix product unless this is set; one thread
-    // suits the small networks used here.
-    if std::env::var_os("RAYON_NUM_THREADS").is_none() {
-        std::env::set_var("RAYON_NUM_THREADS", "1");
-    }
+    // The thread count (`--threads`, else `RAYON_NUM_THREADS`, else a default by workload)
+    // is set in `cli::run` before any numerical work.
     std::process::exit(cli::run());
 }

@@ -7,7 +7,10 @@ use neural_sde::{
     AdamWConfig, LatentConfig, MlpConfig, OptimizerConfig, SolverConfig, TrainConfig, Trainer,
 };
 
+use neural_sde::collective::on_root;
+
 use super::files::Files;
+use super::group::Group;
 use super::{fraction, positive_f64, positive_usize, Failure};
 
 #[derive(Debug, Args)]
@@ -52,9 +55,10 @@ pub struct FitArgs {
     /// --epochs; continue later with --resume (the result is then the same as one run).
     #[arg(long, value_parser = positive_usize)]
     stop_after: Option<usize>,
-    /// Rows per minibatch.
-    #[arg(long, default_value_t = 64, value_parser = positive_usize)]
-    batch_size: usize,
+    /// Rows per minibatch [default: 64; 1024 for tables of 50,000 rows or more, where bigger
+    /// batches keep every core busy].
+    #[arg(long, value_parser = positive_usize)]
+    batch_size: Option<usize>,
     /// Peak learning rate (AdamW, warm-up then cosine decay).
     #[arg(long, default_value_t = 3e-3, value_parser = positive_f64, allow_negative_numbers = true)]
     learning_rate: f64,
@@ -83,7 +87,35 @@ pub struct FitArgs {
     checkpoint_every: Option<usize>,
 }
 
-pub fn run(a: FitArgs) -> Result<(), Failure> {
+/// Tables with at least this many rows get the bigger default batch.
+const BIG_TABLE_ROWS: usize = 50_000;
+
+/// Batches of at least this many rows use every core by default (the fused kernel runs
+/// blocks of 128 paths in parallel; see the benchmarks document).
+const PARALLEL_BATCH: usize = 256;
+
+/// Fits a model; under `mpirun` (with the `mpi` feature), every process runs this and they
+/// train one model together (see [`super::group`]).
+pub fn run(a: FitArgs, threads: Option<usize>) -> Result<(), Failure> {
+    let group = Group::join()?;
+    let result = (|| {
+        let ready = prepare(&a, &group, threads);
+        let (trainer, dims, rows) = group.agree(ready)?;
+        let mut trainer = trainer
+            .in_group(group.handle())
+            .map_err(|e| group.settle(e))?;
+        finish(&a, &group, &mut trainer, dims, rows)
+    })();
+    group.finish(result)
+}
+
+/// Loads the table and builds (or resumes) the trainer: everything that can fail on one
+/// process alone before the processes train together.
+fn prepare(
+    a: &FitArgs,
+    group: &Group,
+    threads: Option<usize>,
+) -> Result<(Trainer, usize, usize), Failure> {
     Files::default()
         .input("data file", a.data.as_deref())
         .input("checkpoint to resume", a.resume.as_deref())
@@ -93,12 +125,23 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
         .check()?;
     let header = super::header_line(a.header, a.no_header)?;
     let table = super::load_table_with(a.data.as_deref(), a.demo, a.columns.as_deref(), header)?;
-    let mut trainer = match &a.resume {
+    let batch_size = a.batch_size.unwrap_or(if table.n_rows() >= BIG_TABLE_ROWS {
+        1024
+    } else {
+        64
+    });
+    let default_threads = if batch_size >= PARALLEL_BATCH {
+        super::cores()
+    } else {
+        1
+    };
+    super::set_threads(threads, default_threads)?;
+    let trainer = match &a.resume {
         Some(ck) => {
             let mut t = Trainer::resume(ck, &table)?;
             let plan = t.planned_epochs();
             let until = a.stop_after.or(a.epochs).unwrap_or(plan);
-            if until > plan {
+            if until > plan && group.is_root() {
                 eprintln!(
                     "note: the checkpoint's learning-rate schedule is planned over {plan} epochs; epochs {} to {until} run at its final learning rate",
                     plan + 1
@@ -125,7 +168,7 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
             };
             let train = TrainConfig {
                 epochs: a.epochs.unwrap_or(300),
-                batch_size: a.batch_size,
+                batch_size,
                 optimizer: OptimizerConfig {
                     adamw: AdamWConfig {
                         learning_rate: a.learning_rate,
@@ -144,32 +187,67 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
             t
         }
     };
-    for w in trainer.warnings() {
-        eprintln!("warning: {w}");
-    }
+    let mut trainer = trainer;
     trainer.set_time_budget(Some(a.time_budget))?;
     if let Some(every) = a.checkpoint_every {
         trainer.checkpoint_every(every, &a.out)?;
     }
-    let dims = table.n_cols();
+    // The table is not needed any more: the trainer keeps its standardised rows.
+    Ok((trainer, table.n_cols(), table.n_rows()))
+}
+
+/// Trains, writes the model and its history (process 0), and reports.
+fn finish(
+    a: &FitArgs,
+    group: &Group,
+    trainer: &mut Trainer,
+    dims: usize,
+    rows: usize,
+) -> Result<(), Failure> {
+    let root = group.is_root();
+    if root {
+        for w in trainer.warnings() {
+            eprintln!("warning: {w}");
+        }
+    }
     let jac = trainer.model().scaler().log_jacobian();
-    let progress = super::progress::Progress::new(dims, jac, Some(a.time_budget));
-    let bar = progress.bar_clone();
-    trainer.add_observer(Box::new(progress));
+    let bar = if root {
+        let progress = super::progress::Progress::new(dims, jac, Some(a.time_budget));
+        let bar = progress.bar_clone();
+        trainer.add_observer(Box::new(progress));
+        Some(bar)
+    } else {
+        None
+    };
     let outcome = trainer.fit();
-    bar.finish_and_clear();
+    if let Some(bar) = bar {
+        bar.finish_and_clear();
+    }
     let (report, failure) = match outcome {
         Ok(r) => (Some(r), None),
         // Keep what was learned: after a training failure the trainer holds the best weights.
         Err(neural_sde::Error::Training(why)) => (None, Some(why)),
-        Err(e) => return Err(e.into()),
+        Err(e) => return Err(group.settle(e)),
     };
-    trainer.save(&a.out)?;
+    trainer.save(&a.out).map_err(|e| group.settle(e))?;
+    let collective = trainer.group();
     if let Some(h) = &a.history {
-        trainer.history().write_csv(h)?;
+        let what = format!("the history {}", h.display());
+        on_root(collective, &what, || trainer.history().write_csv(h))
+            .map_err(|e| group.settle(e))?;
     }
     if let Some(p) = &a.plot {
-        neural_sde::plot::elbo_curve_svg(trainer.history(), dims, p)?;
+        let what = format!("the plot {}", p.display());
+        on_root(collective, &what, || {
+            neural_sde::plot::elbo_curve_svg(trainer.history(), dims, p)
+        })
+        .map_err(|e| group.settle(e))?;
+    }
+    if !root {
+        return match failure {
+            Some(why) => Err(Failure::from(neural_sde::Error::Training(why)).quiet()),
+            None => Ok(()),
+        };
     }
     if let Some(why) = failure {
         return Err(Failure::from(neural_sde::Error::Training(format!(
@@ -180,7 +258,6 @@ pub fn run(a: FitArgs) -> Result<(), Failure> {
     let report = report.ok_or_else(|| Failure::input("training produced no report"))?;
     let state = trainer.state();
     let how = report.termination;
-    let rows = table.n_rows();
     println!(
         "fitted {dims} columns of {rows} rows in {:.1} s: {how} after {} epochs; kept epoch {}",
         report.seconds, report.epochs, report.best_epoch

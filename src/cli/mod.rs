@@ -3,6 +3,7 @@
 mod evaluate;
 mod files;
 mod fit;
+mod group;
 mod inspect;
 mod progress;
 mod sample;
@@ -16,6 +17,11 @@ use clap::{Parser, Subcommand};
 #[derive(Debug, Parser)]
 #[command(name = "neural-sde", version)]
 pub struct Cli {
+    /// Threads for the numerical work [default: RAYON_NUM_THREADS if set, else for fit 1
+    /// for batches under 256 rows and every core otherwise, for evaluate and sample every
+    /// core]. Results do not depend on it.
+    #[arg(long, global = true, value_parser = positive_usize)]
+    threads: Option<usize>,
     #[command(subcommand)]
     command: Command,
 }
@@ -36,6 +42,8 @@ enum Command {
 pub struct Failure {
     code: i32,
     message: String,
+    /// Another process of the same job prints the message.
+    quiet: bool,
 }
 
 impl Failure {
@@ -44,6 +52,26 @@ impl Failure {
         Self {
             code: 2,
             message: message.into(),
+            quiet: false,
+        }
+    }
+
+    /// Prints the message as one `error:` line on stderr.
+    pub fn print(&self) {
+        // Messages clip what they echo; this only guards against printing megabytes.
+        let mut m = self.message.clone();
+        if let Some((cut, _)) = m.char_indices().nth(2000) {
+            m.truncate(cut);
+            m.push('…');
+        }
+        eprintln!("error: {m}");
+    }
+
+    /// The same failure, left for another process of the job to print.
+    pub fn quiet(self) -> Self {
+        Self {
+            quiet: true,
+            ..self
         }
     }
 }
@@ -56,7 +84,11 @@ impl From<neural_sde::Error> for Failure {
         };
         // candle appends a backtrace when RUST_BACKTRACE is set: keep the first line only.
         let message = first_line(&e.to_string()).to_string();
-        Self { code, message }
+        Self {
+            code,
+            message,
+            quiet: false,
+        }
     }
 }
 
@@ -80,25 +112,39 @@ pub fn run() -> i32 {
             return 2;
         }
     };
+    let threads = cli.threads;
     let result = match cli.command {
-        Command::Fit(a) => fit::run(a),
-        Command::Evaluate(a) => evaluate::run(a),
-        Command::Sample(a) => sample::run(a),
-        Command::Inspect(a) => inspect::run(a),
+        // `fit` sets the thread count once it knows the batch size.
+        Command::Fit(a) => fit::run(a, threads),
+        Command::Evaluate(a) => set_threads(threads, cores()).and_then(|()| evaluate::run(a)),
+        Command::Sample(a) => set_threads(threads, cores()).and_then(|()| sample::run(a)),
+        Command::Inspect(a) => set_threads(threads, 1).and_then(|()| inspect::run(a)),
     };
     match result {
         Ok(()) => 0,
+        Err(f) if f.quiet => f.code,
         Err(f) => {
-            // Messages clip what they echo; this only guards against printing megabytes.
-            let mut m = f.message;
-            if let Some((cut, _)) = m.char_indices().nth(2000) {
-                m.truncate(cut);
-                m.push('…');
-            }
-            eprintln!("error: {m}");
+            f.print();
             f.code
         }
     }
+}
+
+/// The machine's cores.
+pub fn cores() -> usize {
+    std::thread::available_parallelism().map_or(1, usize::from)
+}
+
+/// Sets the thread count of the numerical work: `--threads`, else `RAYON_NUM_THREADS`, else
+/// `default`.
+pub fn set_threads(threads: Option<usize>, default: usize) -> Result<(), Failure> {
+    let from_env = std::env::var("RAYON_NUM_THREADS")
+        .ok()
+        .and_then(|v| v.parse::<usize>().ok())
+        .filter(|&n| n >= 1);
+    Ok(neural_sde::set_threads(
+        threads.or(from_env).unwrap_or(default),
+    )?)
 }
 
 /// The first line of `text`.
@@ -131,7 +177,15 @@ pub fn load_table_with(
         (None, false) => Err(Failure::input(
             "give a data file (CSV with a header), or --demo for the built-in demo table",
         )),
-        (Some(p), false) => Ok(neural_sde::Table::from_csv_with_header(p, columns, header)?),
+        (Some(p), false) => {
+            // A bar for files that take more than a moment to read (progress::loading).
+            let mut bar = progress::Loading::new(p);
+            let t = neural_sde::Table::from_csv_reporting(p, columns, header, &mut |at, all| {
+                bar.update(at, all)
+            });
+            bar.finish();
+            Ok(t?)
+        }
         (None, true) => {
             let t = neural_sde::builtin_demo()?;
             Ok(match columns {

@@ -29,7 +29,7 @@ impl Table {
     /// non-numeric cells, NaN or infinite values, duplicate column names, unknown selected
     /// columns.
     pub fn from_csv(path: impl AsRef<Path>, columns: Option<&[String]>) -> Result<Self> {
-        read(path.as_ref(), columns, HeaderLine::Auto)
+        read(path.as_ref(), columns, HeaderLine::Auto, &mut |_, _| {})
     }
 
     /// As [`Table::from_csv`], saying whether the first line names the columns.
@@ -41,27 +41,48 @@ impl Table {
         columns: Option<&[String]>,
         header: HeaderLine,
     ) -> Result<Self> {
-        read(path.as_ref(), columns, header)
+        read(path.as_ref(), columns, header, &mut |_, _| {})
+    }
+
+    /// As [`Table::from_csv_with_header`], calling `progress(bytes_read, file_bytes)` every
+    /// 65,536 rows and at the end (a progress bar for big files, say). The file is parsed
+    /// as a stream into one flat vector: memory holds the values, not the text.
+    ///
+    /// # Errors
+    /// As [`Table::from_csv`].
+    pub fn from_csv_reporting(
+        path: impl AsRef<Path>,
+        columns: Option<&[String]>,
+        header: HeaderLine,
+        progress: &mut dyn FnMut(u64, u64),
+    ) -> Result<Self> {
+        read(path.as_ref(), columns, header, progress)
     }
 }
 
-fn read(path: &Path, select: Option<&[String]>, header_line: HeaderLine) -> Result<Table> {
+/// Rows read between two calls of the progress callback.
+const PROGRESS_EVERY: usize = 65_536;
+
+fn read(
+    path: &Path,
+    select: Option<&[String]>,
+    header_line: HeaderLine,
+    progress: &mut dyn FnMut(u64, u64),
+) -> Result<Table> {
     let err = |reason: String| Error::Data {
         path: path.to_path_buf(),
         reason,
     };
-    let bytes = crate::util::fs::read_file(path).map_err(err)?;
-    if bytes.iter().all(|b| b.is_ascii_whitespace()) {
-        return Err(err(
-            "the file is empty; expected a header line naming the columns, then rows of numbers"
-                .into(),
-        ));
-    }
+    let file = crate::util::fs::open_file(path).map_err(err)?;
+    let total = file.metadata().map(|m| m.len()).unwrap_or(0);
+    // Streamed: the file is parsed in pieces straight into one flat vector of values, so
+    // memory holds the values (8 bytes each) and not the text or a vector per row.
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(header_line != HeaderLine::Absent)
         .flexible(true)
         .trim(csv::Trim::All)
-        .from_reader(bytes.as_slice());
+        .buffer_capacity(1 << 20)
+        .from_reader(std::io::BufReader::with_capacity(1 << 20, file));
     let first: Vec<String> = reader
         .headers()
         .map_err(|e| {
@@ -73,6 +94,12 @@ fn read(path: &Path, select: Option<&[String]>, header_line: HeaderLine) -> Resu
         .iter()
         .map(str::to_string)
         .collect();
+    if first.iter().all(String::is_empty) && reader.is_done() {
+        return Err(err(
+            "the file is empty; expected a header line naming the columns, then rows of numbers"
+                .into(),
+        ));
+    }
     let header: Vec<String> = match header_line {
         HeaderLine::Absent => (1..=first.len()).map(|j| format!("c{j}")).collect(),
         _ => first,
@@ -98,11 +125,19 @@ fn read(path: &Path, select: Option<&[String]>, header_line: HeaderLine) -> Resu
         Some(names) => column_indices(&header, names).map_err(err)?,
         None => (0..header.len()).collect(),
     };
-    let mut rows = Vec::new();
-    for (i, rec) in reader.records().enumerate() {
+    let mut values: Vec<f64> = Vec::new();
+    let mut rec = csv::ByteRecord::new();
+    let mut i = 0usize;
+    loop {
+        let more = reader
+            .read_byte_record(&mut rec)
+            .map_err(|e| err(format!("line {}: {}", i + first_line, clip(&e.to_string()))))?;
+        if !more {
+            break;
+        }
         let line = i + first_line;
-        let rec = rec.map_err(|e| err(format!("line {line}: {}", clip(&e.to_string()))))?;
-        if rec.len() == 1 && rec.get(0) == Some("") {
+        i += 1;
+        if rec.len() == 1 && rec.get(0).is_some_and(<[u8]>::is_empty) {
             continue; // blank line
         }
         if rec.len() != header.len() {
@@ -112,32 +147,58 @@ fn read(path: &Path, select: Option<&[String]>, header_line: HeaderLine) -> Resu
                 header.len()
             )));
         }
-        let mut row = Vec::with_capacity(keep.len());
         for &j in &keep {
-            let cell = rec.get(j).unwrap_or("");
-            let v: f64 = cell.parse().map_err(|_| {
-                err(format!(
-                    "line {line}, column '{}': cannot read '{}' as a number; every selected cell must be numeric",
-                    clip(&header[j]),
-                    clip(cell)
-                ))
-            })?;
-            if !v.is_finite() {
-                return Err(err(format!(
-                    "line {line}, column '{}': value '{}' is not finite; remove or impute it",
-                    clip(&header[j]),
-                    clip(cell)
-                )));
-            }
-            row.push(v);
+            let cell = rec.get(j).unwrap_or(b"");
+            values.push(parse_cell(cell).map_err(|why| {
+                err(format!("line {line}, column '{}': {why}", clip(&header[j]),))
+            })?);
         }
-        rows.push(row);
+        if i.is_multiple_of(PROGRESS_EVERY) {
+            let at = reader.position().byte();
+            progress(at, total);
+            if i == PROGRESS_EVERY && at > 0 && total > at {
+                // Reserve for the whole file at this rate, so the vector does not grow by
+                // doubling (which would briefly hold up to three times the values).
+                let per_row = at as f64 / i as f64;
+                let rows = (total as f64 / per_row * 1.02) as usize;
+                values.reserve(rows.saturating_mul(keep.len()).saturating_sub(values.len()));
+            }
+        }
     }
-    if rows.is_empty() {
+    progress(total, total);
+    if values.is_empty() {
         return Err(err(
             "the file has a header but no data rows; add rows of numbers".into(),
         ));
     }
+    if values.capacity() > values.len() + values.len() / 8 {
+        // Give back a large over-estimate (a small one is not worth a copy of the values).
+        values.shrink_to_fit();
+    }
     let names = keep.iter().map(|&j| header[j].clone()).collect();
-    Table::from_parts(names, rows, path.to_path_buf())
+    Table::from_flat(names, values, path.to_path_buf())
+}
+
+/// One cell as a finite number, or why not.
+fn parse_cell(cell: &[u8]) -> std::result::Result<f64, String> {
+    let text = std::str::from_utf8(cell).map_err(|_| {
+        format!(
+            "cannot read '{}' as a number (not UTF-8 text); every selected cell must be numeric",
+            clip(&String::from_utf8_lossy(cell))
+        )
+    })?;
+    let v: f64 = text.parse().map_err(|_| {
+        format!(
+            "cannot read '{}' as a number; every selected cell must be numeric",
+            clip(text)
+        )
+    })?;
+    if v.is_finite() {
+        Ok(v)
+    } else {
+        Err(format!(
+            "value '{}' is not finite; remove or impute it",
+            clip(text)
+        ))
+    }
 }

@@ -35,6 +35,32 @@ impl Table {
         Self::from_parts(columns, rows, PathBuf::from("<in-memory table>"))
     }
 
+    /// A table from row-major `values` already checked to be finite, `columns` wide.
+    #[cfg_attr(not(feature = "csv"), allow(dead_code))]
+    pub(crate) fn from_flat(
+        columns: Vec<String>,
+        values: Vec<f64>,
+        source: PathBuf,
+    ) -> Result<Self> {
+        check_names(&columns).map_err(|reason| Error::Data {
+            path: source.clone(),
+            reason,
+        })?;
+        let d = columns.len();
+        if values.is_empty() || !values.len().is_multiple_of(d) {
+            return Err(Error::Data {
+                path: source,
+                reason: "the table has a header but no data rows; add rows".into(),
+            });
+        }
+        Ok(Self {
+            n_rows: values.len() / d,
+            columns,
+            values,
+            source,
+        })
+    }
+
     pub(crate) fn from_parts(
         columns: Vec<String>,
         rows: Vec<Vec<f64>>,

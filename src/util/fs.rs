@@ -219,7 +219,20 @@ pub fn writable_destination(path: &Path) -> Result<PathBuf> {
 
 /// Reads a whole file, describing a failure in words for an error message.
 pub(crate) fn read_file(path: &Path) -> std::result::Result<Vec<u8>, String> {
-    std::fs::read(path).map_err(|e| match e.kind() {
+    let mut file = open_file(path)?;
+    let mut bytes = Vec::new();
+    std::io::Read::read_to_end(&mut file, &mut bytes)
+        .map_err(|e| format!("cannot read the file ({e}); check its permissions"))?;
+    Ok(bytes)
+}
+
+/// Opens a file for reading, with the reason in words when it cannot be read (missing, a
+/// folder, no permission).
+pub(crate) fn open_file(path: &Path) -> std::result::Result<std::fs::File, String> {
+    if path.is_dir() {
+        return Err("this is a folder, not a file; give the path of a file".to_string());
+    }
+    std::fs::File::open(path).map_err(|e| match e.kind() {
         std::io::ErrorKind::NotFound => "file not found; check the path".to_string(),
         _ => format!("cannot read the file ({e}); check its permissions"),
     })

@@ -8,3 +8,4 @@ pub(crate) mod precision;
 pub(crate) mod rng;
 pub(crate) mod stack;
 pub(crate) mod text;
+pub(crate) mod threads;
