@@ -110,9 +110,8 @@ impl BrownianIncrements {
         }
         crate::error::check_positive("t_end", t_end)?;
         let per = n_steps * dim;
-        let mut xi1 = vec![vec![0.0; batch * dim]; n_steps];
-        let mut xi2 = with_area.then(|| vec![vec![0.0; batch * dim]; n_steps]);
-        // Each path's draws depend only on its key, so they are made in parallel.
+        // Each path's draws depend only on its key, so they are made in parallel, and so is
+        // the assembly of each step's (batch, dim) block.
         use rayon::prelude::*;
         let drawn: Vec<(Vec<f64>, Vec<f64>)> = keys
             .par_iter()
@@ -128,24 +127,49 @@ impl BrownianIncrements {
                 (a, b)
             })
             .collect();
-        for (i, (a, b)) in drawn.iter().enumerate() {
-            for (k, step) in xi1.iter_mut().enumerate() {
-                step[i * dim..(i + 1) * dim].copy_from_slice(&a[k * dim..(k + 1) * dim]);
-            }
-            if let Some(xi2) = &mut xi2 {
-                for (k, step) in xi2.iter_mut().enumerate() {
-                    step[i * dim..(i + 1) * dim].copy_from_slice(&b[k * dim..(k + 1) * dim]);
+        let h = t_end / n_steps as f64;
+        let sh = h.sqrt();
+        let (c, r3) = (0.5 * h * sh, 1.0 / 3f64.sqrt());
+        // ΔW = √h ξ₁ and ΔZ = ½ h^{3/2} (ξ₁ + ξ₂/√3), as in `sample`.
+        let block = |k: usize, area: bool| -> Result<Tensor> {
+            let value = |(a, b): &(Vec<f64>, Vec<f64>), j: usize| {
+                if area {
+                    c * (a[j] + b[j] * r3)
+                } else {
+                    sh * a[j]
                 }
-            }
-        }
-        Self::from_normals(
-            &xi1,
-            xi2.as_deref(),
-            t_end / n_steps as f64,
-            (batch, dim),
-            dtype,
-            dev,
-        )
+            };
+            let range = k * dim..(k + 1) * dim;
+            let t = if dtype == DType::F32 {
+                let v: Vec<f32> = drawn
+                    .iter()
+                    .flat_map(|d| range.clone().map(move |j| value(d, j) as f32))
+                    .collect();
+                Tensor::from_vec(v, (batch, dim), dev)?
+            } else {
+                let v: Vec<f64> = drawn
+                    .iter()
+                    .flat_map(|d| range.clone().map(move |j| value(d, j)))
+                    .collect();
+                Tensor::from_vec(v, (batch, dim), dev)?.to_dtype(dtype)?
+            };
+            Ok(t)
+        };
+        let dw = (0..n_steps)
+            .into_par_iter()
+            .map(|k| block(k, false))
+            .collect::<Result<Vec<_>>>()?;
+        let dz = if with_area {
+            Some(
+                (0..n_steps)
+                    .into_par_iter()
+                    .map(|k| block(k, true))
+                    .collect::<Result<Vec<_>>>()?,
+            )
+        } else {
+            None
+        };
+        Ok(Self { dw, dz, step: h })
     }
 
     /// Increments `ΔW = √h ξ₁` and, given `ξ₂`, `ΔZ = ½ h^{3/2} (ξ₁ + ξ₂/√3)`, one
