@@ -35,13 +35,17 @@ pub struct EvaluateArgs {
 
 pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
     let model = TabularModel::load(&a.model)?;
-    let table = super::load_table_with(
-        a.data.as_deref(),
-        a.demo,
-        Some(model.columns()),
-        super::header_line(a.header, a.no_header)?,
-    )?;
-    let e = model.evaluate(&table, EvalOptions::new(a.paths, a.seed))?;
+    let header = super::header_line(a.header, a.no_header)?;
+    let options = EvalOptions::new(a.paths, a.seed);
+    let e = match (&a.data, a.demo) {
+        // A file is read a chunk of rows at a time: memory does not grow with its length.
+        (Some(path), false) => model.evaluate_csv(path, header, options)?,
+        _ => {
+            let table =
+                super::load_table_with(a.data.as_deref(), a.demo, Some(model.columns()), header)?;
+            model.evaluate(&table, options)?
+        }
+    };
     if a.json {
         let v = serde_json::json!({
             "rows": e.rows,

@@ -69,114 +69,195 @@ fn read(
     header_line: HeaderLine,
     progress: &mut dyn FnMut(u64, u64),
 ) -> Result<Table> {
-    let err = |reason: String| Error::Data {
-        path: path.to_path_buf(),
-        reason,
-    };
-    let file = crate::util::fs::open_file(path).map_err(err)?;
-    let total = file.metadata().map(|m| m.len()).unwrap_or(0);
-    // Streamed: the file is parsed in pieces straight into one flat vector of values, so
-    // memory holds the values (8 bytes each) and not the text or a vector per row.
-    let mut reader = csv::ReaderBuilder::new()
-        .has_headers(header_line != HeaderLine::Absent)
-        .flexible(true)
-        .trim(csv::Trim::All)
-        .buffer_capacity(1 << 20)
-        .from_reader(std::io::BufReader::with_capacity(1 << 20, file));
-    let first: Vec<String> = reader
-        .headers()
-        .map_err(|e| {
-            err(format!(
-                "cannot read the header line: {}",
-                clip(&e.to_string())
-            ))
-        })?
-        .iter()
-        .map(str::to_string)
-        .collect();
-    if first.iter().all(String::is_empty) && reader.is_done() {
-        return Err(err(
-            "the file is empty; expected a header line naming the columns, then rows of numbers"
-                .into(),
-        ));
-    }
-    let header: Vec<String> = match header_line {
-        HeaderLine::Absent => (1..=first.len()).map(|j| format!("c{j}")).collect(),
-        _ => first,
-    };
-    if header_line == HeaderLine::Auto
-        && header
-            .iter()
-            .all(|c| !c.is_empty() && c.parse::<f64>().is_ok())
-    {
-        return Err(err(format!(
-            "the first line ({}) holds only numbers: is it a row of data? Say --no-header if so (columns are then named c1, c2, …), or --header if these numbers are the column names",
-            clip(&header.join(","))
-        )));
-    }
-    check_names(&header).map_err(|r| err(format!("header: {r}")))?;
-    // Without a header line the first record is data: line numbers start at 1.
-    let first_line = if header_line == HeaderLine::Absent {
-        1
-    } else {
-        2
-    };
-    let keep: Vec<usize> = match select {
-        Some(names) => column_indices(&header, names).map_err(err)?,
-        None => (0..header.len()).collect(),
-    };
+    let mut rows = CsvRows::open(path, select, header_line)?;
     let mut values: Vec<f64> = Vec::new();
-    let mut rec = csv::ByteRecord::new();
-    let mut i = 0usize;
+    let mut n = 0usize;
     loop {
-        let more = reader
-            .read_byte_record(&mut rec)
-            .map_err(|e| err(format!("line {}: {}", i + first_line, clip(&e.to_string()))))?;
-        if !more {
+        let got = rows.next_rows(PROGRESS_EVERY, &mut values)?;
+        if got == 0 {
             break;
         }
-        let line = i + first_line;
-        i += 1;
-        if rec.len() == 1 && rec.get(0).is_some_and(<[u8]>::is_empty) {
-            continue; // blank line
-        }
-        if rec.len() != header.len() {
-            return Err(err(format!(
-                "line {line} has {} fields but the header has {} columns; make every row the same length",
-                rec.len(),
-                header.len()
-            )));
-        }
-        for &j in &keep {
-            let cell = rec.get(j).unwrap_or(b"");
-            values.push(parse_cell(cell).map_err(|why| {
-                err(format!("line {line}, column '{}': {why}", clip(&header[j]),))
-            })?);
-        }
-        if i.is_multiple_of(PROGRESS_EVERY) {
-            let at = reader.position().byte();
-            progress(at, total);
-            if i == PROGRESS_EVERY && at > 0 && total > at {
-                // Reserve for the whole file at this rate, so the vector does not grow by
-                // doubling (which would briefly hold up to three times the values).
-                let per_row = at as f64 / i as f64;
-                let rows = (total as f64 / per_row * 1.02) as usize;
-                values.reserve(rows.saturating_mul(keep.len()).saturating_sub(values.len()));
-            }
+        n += got;
+        let (at, total) = (rows.position(), rows.total);
+        progress(at, total);
+        if n == PROGRESS_EVERY && at > 0 && total > at {
+            // Reserve for the whole file at this rate, so the vector does not grow by
+            // doubling (which would briefly hold up to three times the values).
+            let rows_expected = (total as f64 / (at as f64 / n as f64) * 1.02) as usize;
+            let want = rows_expected.saturating_mul(rows.width());
+            values.reserve(want.saturating_sub(values.len()));
         }
     }
-    progress(total, total);
+    progress(rows.total, rows.total);
     if values.is_empty() {
-        return Err(err(
-            "the file has a header but no data rows; add rows of numbers".into(),
-        ));
+        return Err(
+            rows.error("the file has a header but no data rows; add rows of numbers".into())
+        );
     }
     if values.capacity() > values.len() + values.len() / 8 {
         // Give back a large over-estimate (a small one is not worth a copy of the values).
         values.shrink_to_fit();
     }
-    let names = keep.iter().map(|&j| header[j].clone()).collect();
+    let names = rows.columns();
     Table::from_flat(names, values, path.to_path_buf())
+}
+
+/// A CSV file read a batch of rows at a time, straight into flat vectors of values (no copy
+/// of the text, no vector per row): [`Table::from_csv`] and streamed evaluation use it.
+pub(crate) struct CsvRows {
+    path: std::path::PathBuf,
+    reader: csv::Reader<std::io::BufReader<std::fs::File>>,
+    header: Vec<String>,
+    keep: Vec<usize>,
+    first_line: usize,
+    records: usize,
+    rec: csv::ByteRecord,
+    total: u64,
+}
+
+impl CsvRows {
+    /// Opens `path` and reads its header; keeps the `select`ed columns (all when `None`).
+    ///
+    /// # Errors
+    /// As [`Table::from_csv`] for the file and its header.
+    pub(crate) fn open(
+        path: &Path,
+        select: Option<&[String]>,
+        header_line: HeaderLine,
+    ) -> Result<Self> {
+        let err = |reason: String| Error::Data {
+            path: path.to_path_buf(),
+            reason,
+        };
+        let file = crate::util::fs::open_file(path).map_err(err)?;
+        let total = file.metadata().map(|m| m.len()).unwrap_or(0);
+        let mut reader = csv::ReaderBuilder::new()
+            .has_headers(header_line != HeaderLine::Absent)
+            .flexible(true)
+            .trim(csv::Trim::All)
+            .buffer_capacity(1 << 20)
+            .from_reader(std::io::BufReader::with_capacity(1 << 20, file));
+        let first: Vec<String> = reader
+            .headers()
+            .map_err(|e| {
+                err(format!(
+                    "cannot read the header line: {}",
+                    clip(&e.to_string())
+                ))
+            })?
+            .iter()
+            .map(str::to_string)
+            .collect();
+        if first.iter().all(String::is_empty) && reader.is_done() {
+            return Err(err(
+                "the file is empty; expected a header line naming the columns, then rows of numbers"
+                    .into(),
+            ));
+        }
+        let header: Vec<String> = match header_line {
+            HeaderLine::Absent => (1..=first.len()).map(|j| format!("c{j}")).collect(),
+            _ => first,
+        };
+        if header_line == HeaderLine::Auto
+            && header
+                .iter()
+                .all(|c| !c.is_empty() && c.parse::<f64>().is_ok())
+        {
+            return Err(err(format!(
+                "the first line ({}) holds only numbers: is it a row of data? Say --no-header if so (columns are then named c1, c2, …), or --header if these numbers are the column names",
+                clip(&header.join(","))
+            )));
+        }
+        check_names(&header).map_err(|r| err(format!("header: {r}")))?;
+        let keep: Vec<usize> = match select {
+            Some(names) => column_indices(&header, names).map_err(err)?,
+            None => (0..header.len()).collect(),
+        };
+        Ok(Self {
+            path: path.to_path_buf(),
+            reader,
+            header,
+            keep,
+            // Without a header line the first record is data: line numbers start at 1.
+            first_line: if header_line == HeaderLine::Absent {
+                1
+            } else {
+                2
+            },
+            records: 0,
+            rec: csv::ByteRecord::new(),
+            total,
+        })
+    }
+
+    /// The kept columns' names.
+    pub(crate) fn columns(&self) -> Vec<String> {
+        self.keep.iter().map(|&j| self.header[j].clone()).collect()
+    }
+
+    /// Values per row.
+    pub(crate) fn width(&self) -> usize {
+        self.keep.len()
+    }
+
+    /// Bytes read so far.
+    fn position(&self) -> u64 {
+        self.reader.position().byte()
+    }
+
+    /// An error about this file.
+    pub(crate) fn error(&self, reason: String) -> Error {
+        Error::Data {
+            path: self.path.clone(),
+            reason,
+        }
+    }
+
+    /// Appends up to `max_rows` rows to `values` (row-major); returns how many (0 at the end
+    /// of the file). Blank lines are skipped.
+    ///
+    /// # Errors
+    /// [`Error::Data`] naming the line and column of a ragged row or a cell that is not a
+    /// finite number.
+    pub(crate) fn next_rows(&mut self, max_rows: usize, values: &mut Vec<f64>) -> Result<usize> {
+        let mut got = 0;
+        while got < max_rows {
+            let line = self.records + self.first_line;
+            let more = self
+                .reader
+                .read_byte_record(&mut self.rec)
+                .map_err(|e| self.error(format!("line {line}: {}", clip(&e.to_string()))))?;
+            if !more {
+                break;
+            }
+            self.records += 1;
+            let rec = &self.rec;
+            if rec.len() == 1 && rec.get(0).is_some_and(<[u8]>::is_empty) {
+                continue; // blank line
+            }
+            if rec.len() != self.header.len() {
+                return Err(self.error(format!(
+                    "line {line} has {} fields but the header has {} columns; make every row the same length",
+                    rec.len(),
+                    self.header.len()
+                )));
+            }
+            for &j in &self.keep {
+                let cell = rec.get(j).unwrap_or(b"");
+                match parse_cell(cell) {
+                    Ok(v) => values.push(v),
+                    Err(why) => {
+                        return Err(self.error(format!(
+                            "line {line}, column '{}': {why}",
+                            clip(&self.header[j]),
+                        )))
+                    }
+                }
+            }
+            got += 1;
+        }
+        Ok(got)
+    }
 }
 
 /// One cell as a finite number, or why not.

@@ -51,9 +51,10 @@ pub struct Evaluation {
     pub loglik_per_dim: f64,
     /// Standard error (over rows) of `loglik_per_row`.
     pub loglik_se: f64,
-    /// ELBO of each row.
+    /// ELBO of each row (empty for a streamed evaluation of a file).
     pub elbo_rows: Vec<f64>,
-    /// Importance-weighted log-likelihood of each row.
+    /// Importance-weighted log-likelihood of each row (empty for a streamed evaluation of a
+    /// file).
     pub loglik_rows: Vec<f64>,
 }
 
@@ -75,5 +76,73 @@ impl std::fmt::Display for Evaluation {
             self.paths, self.loglik_per_row, self.loglik_per_dim, self.loglik_se
         )?;
         write!(f, "nats, in the data's own units")
+    }
+}
+
+/// Running sums of per-row figures (Welford's update for the variance; Welford 1962,
+/// "Note on a method for calculating corrected sums of squares and products",
+/// Technometrics 4(3)), so an evaluation streamed over many rows keeps nothing per row.
+#[derive(Debug, Default)]
+pub(crate) struct EvalSums {
+    rows: usize,
+    elbo_sum: f64,
+    loglik_mean: f64,
+    loglik_m2: f64,
+    loglik_sum: f64,
+}
+
+impl EvalSums {
+    /// Adds one row's ELBO and importance-weighted log-likelihood.
+    pub(crate) fn add(&mut self, elbo: f64, loglik: f64) {
+        self.rows += 1;
+        self.elbo_sum += elbo;
+        self.loglik_sum += loglik;
+        let delta = loglik - self.loglik_mean;
+        self.loglik_mean += delta / self.rows as f64;
+        self.loglik_m2 += delta * (loglik - self.loglik_mean);
+    }
+
+    /// Whether no row was added.
+    pub(crate) fn is_empty(&self) -> bool {
+        self.rows == 0
+    }
+
+    /// The evaluation of the rows added, with `per_row` figures when they were kept.
+    ///
+    /// # Errors
+    /// [`crate::Error::NonFinite`] when a mean is not finite (callers refuse zero rows).
+    pub(crate) fn finish(
+        &self,
+        dims: usize,
+        paths: usize,
+        per_row: Option<(Vec<f64>, Vec<f64>)>,
+    ) -> crate::error::Result<Evaluation> {
+        let n = self.rows.max(1) as f64;
+        let elbo = self.elbo_sum / n;
+        let ll = self.loglik_sum / n;
+        if !ll.is_finite() || !elbo.is_finite() {
+            return Err(crate::error::Error::NonFinite {
+                what: "evaluation".into(),
+                detail: format!("ELBO {elbo}, log-likelihood {ll}; the rows may lie far outside the training data"),
+            });
+        }
+        let var = if self.rows > 1 {
+            self.loglik_m2 / (n - 1.0)
+        } else {
+            0.0
+        };
+        let (elbo_rows, loglik_rows) = per_row.unwrap_or_default();
+        Ok(Evaluation {
+            rows: self.rows,
+            dims,
+            paths,
+            elbo_per_row: elbo,
+            elbo_per_dim: elbo / dims as f64,
+            loglik_per_row: ll,
+            loglik_per_dim: ll / dims as f64,
+            loglik_se: (var / n).sqrt(),
+            elbo_rows,
+            loglik_rows,
+        })
     }
 }

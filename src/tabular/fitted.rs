@@ -9,7 +9,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, Result};
 use crate::nn::params::sorted_vars;
-use crate::tabular::evaluation::{EvalOptions, Evaluation};
+use crate::tabular::evaluation::{EvalOptions, EvalSums, Evaluation};
 use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory};
 use crate::tabular::scaler::Standardizer;
 use crate::tabular::table::Table;
@@ -98,74 +98,105 @@ impl TabularModel {
     }
 
     /// ELBO and importance-weighted log-likelihood from `options.paths` posterior paths per
-    /// row, streamed in chunks (memory does not grow with the number of rows).
+    /// row, computed in chunks; the figures of each row are kept in the result.
     ///
     /// # Errors
     /// [`Error::Data`] if the table lacks the model's columns; [`Error::InvalidConfig`] for
     /// 0 paths.
     pub fn evaluate(&self, table: &Table, options: EvalOptions) -> Result<Evaluation> {
-        let EvalOptions { paths, seed } = options;
-        if paths == 0 {
-            return Err(Error::config(
-                "paths",
-                0,
-                "use at least 1 posterior path per row",
-            ));
-        }
-        crate::util::limits::at_most(
-            "paths",
-            paths,
-            crate::util::limits::MAX_BATCH,
-            "posterior paths per row",
-        )?;
+        let paths = check_paths(options.paths)?;
         let table = self.matching(table)?;
-        let z = self.scaler.transform(&table);
         let d = self.columns.len();
-        let mut rng = generator(seed, streams::EVAL);
-        let chunk_rows = self
-            .model
-            .config()
-            .chunk_rows(d, paths, (8192 / paths).max(1));
+        let mut rng = generator(options.seed, streams::EVAL);
+        let chunk_rows = self.eval_chunk_rows(paths);
+        let mut sums = EvalSums::default();
         let (mut elbo_rows, mut loglik_rows) = (Vec::new(), Vec::new());
-        let jac = self.scaler.log_jacobian();
-        for chunk in z.chunks(chunk_rows * d) {
-            let r = chunk.len() / d;
-            let terms = self.model.posterior_terms(chunk, paths, &mut rng)?;
-            for i in 0..r {
-                let lw = &terms.log_weight[i * paths..(i + 1) * paths];
-                let el = &terms.elbo[i * paths..(i + 1) * paths];
-                let max = lw.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-                let lse = max + lw.iter().map(|l| (l - max).exp()).sum::<f64>().ln();
-                loglik_rows.push(lse - (paths as f64).ln() + jac);
-                elbo_rows.push(el.iter().sum::<f64>() / paths as f64 + jac);
+        let mut z = Vec::with_capacity(chunk_rows * d);
+        for rows in table.values().chunks(chunk_rows * d) {
+            z.clear();
+            for row in rows.chunks_exact(d) {
+                self.scaler.transform_row_into(row, &mut z);
             }
+            self.eval_chunk(&z, paths, &mut rng, |e, l| {
+                sums.add(e, l);
+                elbo_rows.push(e);
+                loglik_rows.push(l);
+            })?;
         }
-        let n = elbo_rows.len() as f64;
-        let elbo = elbo_rows.iter().sum::<f64>() / n;
-        let ll = loglik_rows.iter().sum::<f64>() / n;
-        if !ll.is_finite() || !elbo.is_finite() {
-            return Err(Error::NonFinite {
-                what: "evaluation".into(),
-                detail: format!("ELBO {elbo}, log-likelihood {ll}; the rows may lie far outside the training data"),
-            });
+        sums.finish(d, paths, Some((elbo_rows, loglik_rows)))
+    }
+
+    /// As [`TabularModel::evaluate`] on the rows of a CSV file, read a chunk at a time: memory
+    /// does not grow with the number of rows (the result keeps no per-row figures). With the
+    /// same options it gives the figures [`TabularModel::evaluate`] gives on the loaded table.
+    ///
+    /// # Errors
+    /// As [`Table::from_csv`] for the file; as [`TabularModel::evaluate`].
+    #[cfg(feature = "csv")]
+    pub fn evaluate_csv(
+        &self,
+        path: impl AsRef<Path>,
+        header: crate::tabular::csv_io::HeaderLine,
+        options: EvalOptions,
+    ) -> Result<Evaluation> {
+        let paths = check_paths(options.paths)?;
+        let mut reader =
+            crate::tabular::csv_io::CsvRows::open(path.as_ref(), Some(&self.columns), header)?;
+        let d = self.columns.len();
+        let mut rng = generator(options.seed, streams::EVAL);
+        let chunk_rows = self.eval_chunk_rows(paths);
+        let mut sums = EvalSums::default();
+        let (mut raw, mut z) = (Vec::new(), Vec::new());
+        loop {
+            raw.clear();
+            if reader.next_rows(chunk_rows, &mut raw)? == 0 {
+                break;
+            }
+            z.clear();
+            for row in raw.chunks_exact(d) {
+                self.scaler.transform_row_into(row, &mut z);
+            }
+            self.eval_chunk(&z, paths, &mut rng, |e, l| sums.add(e, l))?;
         }
-        let var = if n > 1.0 {
-            loglik_rows.iter().map(|v| (v - ll).powi(2)).sum::<f64>() / (n - 1.0)
-        } else {
-            0.0
-        };
-        Ok(Evaluation {
-            rows: elbo_rows.len(),
-            dims: d,
-            paths,
-            elbo_per_row: elbo,
-            elbo_per_dim: elbo / d as f64,
-            loglik_per_row: ll,
-            loglik_per_dim: ll / d as f64,
-            loglik_se: (var / n).sqrt(),
-            elbo_rows,
-            loglik_rows,
-        })
+        if sums.is_empty() {
+            return Err(
+                reader.error("the file has a header but no data rows; add rows of numbers".into())
+            );
+        }
+        sums.finish(d, paths, None)
+    }
+
+    /// Rows evaluated together.
+    fn eval_chunk_rows(&self, paths: usize) -> usize {
+        self.model
+            .config()
+            .chunk_rows(self.columns.len(), paths, (8192 / paths).max(1))
+            .max(1)
+    }
+
+    /// Evaluates standardised rows `z`, calling `each(elbo, loglik)` per row (data units).
+    fn eval_chunk(
+        &self,
+        z: &[f64],
+        paths: usize,
+        rng: &mut crate::util::rng::Generator,
+        mut each: impl FnMut(f64, f64),
+    ) -> Result<()> {
+        let d = self.columns.len();
+        let r = z.len() / d;
+        let jac = self.scaler.log_jacobian();
+        let terms = self.model.posterior_terms(z, paths, rng)?;
+        for i in 0..r {
+            let lw = &terms.log_weight[i * paths..(i + 1) * paths];
+            let el = &terms.elbo[i * paths..(i + 1) * paths];
+            let max = lw.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+            let lse = max + lw.iter().map(|l| (l - max).exp()).sum::<f64>().ln();
+            each(
+                el.iter().sum::<f64>() / paths as f64 + jac,
+                lse - (paths as f64).ln() + jac,
+            );
+        }
+        Ok(())
     }
 
     /// Generates `rows` new rows in the data's units (seeded, in batches, no autodiff graph).
@@ -389,4 +420,22 @@ impl ModelHeader {
         }
         Ok(())
     }
+}
+
+/// Checks the number of posterior paths per row.
+fn check_paths(paths: usize) -> Result<usize> {
+    if paths == 0 {
+        return Err(Error::config(
+            "paths",
+            0,
+            "use at least 1 posterior path per row",
+        ));
+    }
+    crate::util::limits::at_most(
+        "paths",
+        paths,
+        crate::util::limits::MAX_BATCH,
+        "posterior paths per row",
+    )?;
+    Ok(paths)
 }
