@@ -45,8 +45,9 @@ pub struct FitArgs {
     /// Euler–Maruyama steps of the latent path on [0, 1].
     #[arg(long, default_value_t = 20, value_parser = positive_usize)]
     steps: usize,
-    /// Epochs to train (each at least 50 optimiser steps); the learning-rate schedule is
-    /// planned over them. With --resume: the epoch to stop at [default: 300; with --resume,
+    /// Epochs to train (each at least 50 optimiser steps, and at most 1,000: on big tables an
+    /// epoch is 1,000 steps of freshly shuffled rows); the learning-rate schedule is planned
+    /// over them. With --resume: the epoch to stop at [default: 300; with --resume,
     /// the checkpoint's plan]. Resumed runs keep the checkpoint's schedule; epochs past its
     /// plan run at the final learning rate.
     #[arg(long, value_parser = positive_usize)]
@@ -65,7 +66,8 @@ pub struct FitArgs {
     /// Seed of every random draw (split, minibatches, weights, noise).
     #[arg(long, default_value_t = 0)]
     seed: u64,
-    /// Share of rows held out to measure the validation ELBO (early stopping).
+    /// Share of rows held out to measure the validation ELBO (early stopping; computed each
+    /// epoch on a seeded subset of at most 2,048 of them).
     #[arg(long, default_value_t = 0.2, value_parser = fraction, allow_negative_numbers = true)]
     validation_fraction: f64,
     /// Stop training after this many seconds and keep the best model so far.

@@ -28,7 +28,8 @@ pub struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
-    /// Fit a model to a table (or to the built-in synthetic demo table with --demo).
+    /// Fit a model to a table (or to the built-in synthetic demo table with --demo). Under
+    /// `mpirun -np P` (built with the `mpi` feature) the P processes train one model together.
     Fit(fit::FitArgs),
     /// ELBO and importance-weighted log-likelihood of a model on a table, in the data's units.
     Evaluate(evaluate::EvaluateArgs),
