@@ -9,7 +9,8 @@
 //! once to `target/scale-bench/`. Loading runs in a child process so that its peak memory
 //! (VmHWM) is the load's alone. Throughput is read from the fit's history: optimiser steps
 //! × batch rows / seconds of the epochs (validation included), at the default batch of a big
-//! table (1024 rows).
+//! table (1024 rows). A one-thread run at 256 rows per batch gives the fixed cost per step
+//! `a_ms` and the cost per row `c_us` that `benches/scaling_model.py` takes.
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -138,7 +139,7 @@ fn main() {
     // Throughput.
     let bin = env!("CARGO_BIN_EXE_neural-sde");
     let budget = a.seconds.to_string();
-    let fit = |launcher: &[&str], threads: &str, name: &str| -> Option<f64> {
+    let fit = |launcher: &[&str], threads: &str, name: &str, batch: usize| -> Option<f64> {
         let history = dir.join(format!("{name}.csv"));
         let _ = std::fs::remove_file(&history);
         let mut c = Command::new(launcher.first().copied().unwrap_or(bin));
@@ -148,7 +149,13 @@ fn main() {
         let o = c
             .args(["--threads", threads, "fit"])
             .arg(&table)
-            .args(["--time-budget", &budget, "--out"])
+            .args([
+                "--time-budget",
+                &budget,
+                "--batch-size",
+                &batch.to_string(),
+                "--out",
+            ])
             .arg(dir.join(format!("{name}.safetensors")))
             .arg("--history")
             .arg(&history)
@@ -162,7 +169,7 @@ fn main() {
             );
             return None;
         }
-        Some(throughput(&history, 1024.0))
+        Some(throughput(&history, batch as f64))
     };
     let mpirun = |np: &'static str| {
         [
@@ -174,17 +181,28 @@ fn main() {
         ]
     };
     for round in 0..a.rounds {
-        let t1 = fit(&[], "1", "threads1");
-        let t2 = fit(&[], "2", "threads2");
-        let p1 = fit(&mpirun("1"), "1", "mpi1");
-        let p2 = fit(&mpirun("2"), "1", "mpi2");
+        let t1 = fit(&[], "1", "threads1", 1024);
+        let t2 = fit(&[], "2", "threads2", 1024);
+        let p1 = fit(&mpirun("1"), "1", "mpi1", 1024);
+        let p2 = fit(&mpirun("2"), "1", "mpi2", 1024);
+        // One thread at a quarter of the batch: with the time per step a + c·B, two batch
+        // sizes give the fixed cost a and the cost per row c (for the scaling model).
+        let small = fit(&[], "1", "threads1_small", 256);
+        let cost = match (t1, small) {
+            (Some(big), Some(small)) => {
+                let (s1, s2) = (1024.0 / big, 256.0 / small);
+                let c = (s1 - s2) / 768.0;
+                format!("{:.3},\"c_us\":{:.2}", (s1 - 1024.0 * c) * 1e3, c * 1e6)
+            }
+            _ => "null,\"c_us\":null".to_string(),
+        };
         let show = |x: Option<f64>| x.map_or("null".to_string(), |v| format!("{v:.0}"));
         let ratio = |a: Option<f64>, b: Option<f64>| match (a, b) {
             (Some(a), Some(b)) => format!("{:.2}", b / a),
             _ => "null".to_string(),
         };
         println!(
-            "{{\"round\":{round},\"rows_per_s_threads_1\":{},\"rows_per_s_threads_2\":{},\"threads_speedup\":{},\"rows_per_s_mpi_1\":{},\"rows_per_s_mpi_2\":{},\"mpi_speedup\":{}}}",
+            "{{\"round\":{round},\"rows_per_s_threads_1\":{},\"rows_per_s_threads_2\":{},\"threads_speedup\":{},\"rows_per_s_mpi_1\":{},\"rows_per_s_mpi_2\":{},\"mpi_speedup\":{},\"a_ms\":{cost}}}",
             show(t1),
             show(t2),
             ratio(t1, t2),

@@ -193,3 +193,28 @@ fn the_thread_count_does_not_change_the_model() {
         assert!(ta == tb, "tensor {na} differs between 1 and 2 threads");
     }
 }
+
+#[test]
+fn impossible_thread_counts_and_mpi_launches_without_the_feature_are_refused() {
+    let d = dir("scale-refused");
+    let out = d.join("m.safetensors");
+    let o = run(bin()
+        .args(["--threads", "5000", "fit", "--demo", "--out"])
+        .arg(&out));
+    assert_input_error(&o, &["threads", "5000"]);
+    let o = run(bin()
+        .args(["--threads", "0", "fit", "--demo", "--out"])
+        .arg(&out));
+    assert_eq!(o.status.code(), Some(2));
+    assert!(!out.exists());
+    // One of several copies started by mpirun, in a build without the `mpi` feature, would
+    // fit alone and race the others to the same files.
+    if cfg!(not(feature = "mpi")) {
+        let o = run(bin()
+            .args(["fit", "--demo", "--out"])
+            .arg(&out)
+            .env("OMPI_COMM_WORLD_SIZE", "2"));
+        assert_input_error(&o, &["2 MPI processes", "--features mpi"]);
+        assert!(!out.exists());
+    }
+}

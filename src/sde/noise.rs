@@ -111,64 +111,60 @@ impl BrownianIncrements {
         crate::error::check_positive("t_end", t_end)?;
         let per = n_steps * dim;
         // Each path's draws depend only on its key, so they are made in parallel, and so is
-        // the assembly of each step's (batch, dim) block.
+        // the assembly of each step's (batch, dim) block (on one thread, or for few values,
+        // in order: handing small jobs to the pool costs more than it saves).
         use rayon::prelude::*;
-        let drawn: Vec<(Vec<f64>, Vec<f64>)> = keys
-            .par_iter()
-            .with_min_len(16)
-            .map(|&key| {
-                let mut g = crate::util::rng::keyed_generator(seed, stream, key);
-                let a = standard_normals(&mut g, per);
-                let b = if with_area {
-                    standard_normals(&mut g, per)
-                } else {
-                    Vec::new()
-                };
-                (a, b)
-            })
-            .collect();
+        let parallel = rayon::current_num_threads() > 1 && batch * per >= 1 << 14;
+        let draw = |&key: &u64| {
+            let mut g = crate::util::rng::keyed_generator(seed, stream, key);
+            let a = standard_normals(&mut g, per);
+            let b = if with_area {
+                standard_normals(&mut g, per)
+            } else {
+                Vec::new()
+            };
+            (a, b)
+        };
+        let drawn: Vec<(Vec<f64>, Vec<f64>)> = if parallel {
+            keys.par_iter().with_min_len(16).map(draw).collect()
+        } else {
+            keys.iter().map(draw).collect()
+        };
         let h = t_end / n_steps as f64;
         let sh = h.sqrt();
         let (c, r3) = (0.5 * h * sh, 1.0 / 3f64.sqrt());
         // ΔW = √h ξ₁ and ΔZ = ½ h^{3/2} (ξ₁ + ξ₂/√3), as in `sample`.
         let block = |k: usize, area: bool| -> Result<Tensor> {
-            let value = |(a, b): &(Vec<f64>, Vec<f64>), j: usize| {
-                if area {
-                    c * (a[j] + b[j] * r3)
-                } else {
-                    sh * a[j]
+            let mut v = Vec::with_capacity(batch * dim);
+            for (a, b) in &drawn {
+                for j in k * dim..(k + 1) * dim {
+                    v.push(if area {
+                        c * (a[j] + b[j] * r3)
+                    } else {
+                        sh * a[j]
+                    });
                 }
-            };
-            let range = k * dim..(k + 1) * dim;
+            }
             let t = if dtype == DType::F32 {
-                let v: Vec<f32> = drawn
-                    .iter()
-                    .flat_map(|d| range.clone().map(move |j| value(d, j) as f32))
-                    .collect();
+                let v: Vec<f32> = v.iter().map(|&x| x as f32).collect();
                 Tensor::from_vec(v, (batch, dim), dev)?
             } else {
-                let v: Vec<f64> = drawn
-                    .iter()
-                    .flat_map(|d| range.clone().map(move |j| value(d, j)))
-                    .collect();
                 Tensor::from_vec(v, (batch, dim), dev)?.to_dtype(dtype)?
             };
             Ok(t)
         };
-        let dw = (0..n_steps)
-            .into_par_iter()
-            .map(|k| block(k, false))
-            .collect::<Result<Vec<_>>>()?;
-        let dz = if with_area {
-            Some(
+        let blocks = |area: bool| -> Result<Vec<Tensor>> {
+            if parallel {
                 (0..n_steps)
                     .into_par_iter()
-                    .map(|k| block(k, true))
-                    .collect::<Result<Vec<_>>>()?,
-            )
-        } else {
-            None
+                    .map(|k| block(k, area))
+                    .collect()
+            } else {
+                (0..n_steps).map(|k| block(k, area)).collect()
+            }
         };
+        let dw = blocks(false)?;
+        let dz = if with_area { Some(blocks(true)?) } else { None };
         Ok(Self { dw, dz, step: h })
     }
 
