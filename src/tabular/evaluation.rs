@@ -103,6 +103,7 @@ impl EvalSums {
     }
 
     /// Whether no row was added.
+    #[cfg_attr(not(feature = "csv"), allow(dead_code))]
     pub(crate) fn is_empty(&self) -> bool {
         self.rows == 0
     }
