@@ -115,6 +115,7 @@ pub use tabular::csv_io::HeaderLine;
 pub use tabular::demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
 pub use tabular::evaluation::{EvalOptions, Evaluation};
 pub use tabular::fitted::TabularModel;
+pub use tabular::mixture::{Covariance, MixtureModel, MixtureOptions};
 pub use tabular::model::{
     Decoder, DecoderConfig, DecoderKind, LatentConfig, LatentModel, PathTerms, PriorFactory,
 };

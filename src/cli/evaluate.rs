@@ -31,19 +31,31 @@ pub struct EvaluateArgs {
     /// Print one JSON object on one line instead of text.
     #[arg(long)]
     json: bool,
+    /// Also fit classical models to these training rows (CSV with the model's columns) and
+    /// report them on the same rows beside the model: the full-covariance Gaussian, and
+    /// Gaussian mixtures with diagonal and with full covariances whose component counts (1 to
+    /// 10) are chosen by BIC, each with the model's gain per dimension and its standard error
+    /// over rows.
+    #[arg(long)]
+    baseline: Option<PathBuf>,
 }
 
 pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
     let model = TabularModel::load(&a.model)?;
     let header = super::header_line(a.header, a.no_header)?;
     let options = EvalOptions::new(a.paths, a.seed);
+    let mut baselines = Vec::new();
     let e = match (&a.data, a.demo) {
         // A file is read a chunk of rows at a time: memory does not grow with its length.
-        (Some(path), false) => model.evaluate_csv(path, header, options)?,
+        (Some(path), false) if a.baseline.is_none() => model.evaluate_csv(path, header, options)?,
         _ => {
             let table =
                 super::load_table_with(a.data.as_deref(), a.demo, Some(model.columns()), header)?;
-            model.evaluate(&table, options)?
+            let e = model.evaluate(&table, options)?;
+            if let Some(train) = &a.baseline {
+                baselines = compare_with_baselines(&model, train, header, &table, &e)?;
+            }
+            e
         }
     };
     if a.json {
@@ -56,10 +68,95 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
             "loglik_per_row": e.loglik_per_row,
             "loglik_per_dim": e.loglik_per_dim,
             "loglik_se_per_row": e.loglik_se,
+            "baselines": baselines,
         });
         println!("{v}");
     } else {
         println!("{e}");
+        if !baselines.is_empty() {
+            println!("classical models fitted to the --baseline rows, on the same rows (nats per dimension; gain = model − baseline, ± standard error over rows):");
+            for b in &baselines {
+                println!(
+                    "  {:<44} {:8.4}   gain {:+.4} ± {:.4}",
+                    b.name, b.loglik_per_dim, b.gain_per_dim, b.gain_se
+                );
+            }
+        }
     }
     Ok(())
+}
+
+/// One classical model's figures beside the model's.
+#[derive(serde::Serialize)]
+struct Baseline {
+    name: String,
+    components: usize,
+    parameters: usize,
+    loglik_per_row: f64,
+    loglik_per_dim: f64,
+    /// Mean over rows of (model − baseline) per dimension.
+    gain_per_dim: f64,
+    gain_se: f64,
+}
+
+/// Fits the Gaussian and the BIC-selected mixtures on the rows of `train` and scores them on
+/// `table` beside the model's per-row figures.
+fn compare_with_baselines(
+    model: &TabularModel,
+    train: &std::path::Path,
+    header: neural_sde::HeaderLine,
+    table: &neural_sde::Table,
+    e: &neural_sde::Evaluation,
+) -> Result<Vec<Baseline>, Failure> {
+    use neural_sde::{Covariance, MixtureModel, MixtureOptions};
+    let train = neural_sde::Table::from_csv_with_header(train, Some(model.columns()), header)?;
+    let options = MixtureOptions::default();
+    let fits = [
+        (
+            "Gaussian (full covariance)",
+            MixtureModel::fit(&train, 1, Covariance::Full, &options)?,
+        ),
+        (
+            "Gaussian mixture, diagonal covariances",
+            MixtureModel::select(&train, Covariance::Diagonal, &options)?,
+        ),
+        (
+            "Gaussian mixture, full covariances",
+            MixtureModel::select(&train, Covariance::Full, &options)?,
+        ),
+    ];
+    let d = e.dims as f64;
+    let mut out = Vec::new();
+    for (name, m) in fits {
+        let rows = m.log_density_rows(table)?;
+        let n = rows.len() as f64;
+        let diff: Vec<f64> = e
+            .loglik_rows
+            .iter()
+            .zip(&rows)
+            .map(|(a, b)| (a - b) / d)
+            .collect();
+        let gain = diff.iter().sum::<f64>() / n;
+        let var = if n > 1.0 {
+            diff.iter().map(|x| (x - gain).powi(2)).sum::<f64>() / (n - 1.0)
+        } else {
+            0.0
+        };
+        let ll = rows.iter().sum::<f64>() / n;
+        let label = if m.components() > 1 || name.starts_with("Gaussian mixture") {
+            format!("{name}, K = {} by BIC", m.components())
+        } else {
+            name.to_string()
+        };
+        out.push(Baseline {
+            name: label,
+            components: m.components(),
+            parameters: m.parameters(),
+            loglik_per_row: ll,
+            loglik_per_dim: ll / d,
+            gain_per_dim: gain,
+            gain_se: (var / n).sqrt(),
+        });
+    }
+    Ok(out)
 }

@@ -1,11 +1,13 @@
 //! The tabular application: tables (CSV, standardisation, seeded splits, the demo table),
-//! the latent-diffusion model, its trainer, the fitted model and its checkpoint contents.
+//! the latent-diffusion model, its trainer, the fitted model and its checkpoint contents, and
+//! the classical baseline it is measured against (Gaussian mixtures).
 
 #[cfg(feature = "csv")]
 pub(crate) mod csv_io;
 pub(crate) mod demo;
 pub(crate) mod evaluation;
 pub(crate) mod fitted;
+pub(crate) mod mixture;
 pub(crate) mod model;
 pub(crate) mod scaler;
 pub(crate) mod split;
