@@ -6,6 +6,7 @@
 //! gradients of a split minibatch gives the minibatch gradient (linearity of the gradient of
 //! a mean; Dean et al. 2012, "Large scale distributed deep networks", NeurIPS, §4 describes
 //! the synchronous variant; common practice), so the weights agree up to rounding.
+mod common;
 #[path = "support/thread_group.rs"]
 mod thread_group;
 
@@ -14,13 +15,17 @@ use std::sync::Arc;
 use neural_sde::*;
 
 fn table(n: usize) -> Table {
-    // Demo rows from a fixed generator: a correlated Gaussian.
-    let z = standard_normals(&mut generator(8, 0), n * 2);
-    let rows = z
-        .chunks_exact(2)
-        .map(|e| vec![10.0 + 2.0 * e[0], -3.0 + 0.5 * (0.8 * e[0] + 0.6 * e[1])])
-        .collect();
-    Table::new(vec!["x".into(), "y".into()], rows).unwrap()
+    common::correlated_table(n)
+}
+
+/// Runs `f` once per member of a group of `p` threads standing in for processes; the
+/// results in rank order.
+fn in_group<T: Send>(p: usize, f: impl Fn(thread_group::ThreadGroup) -> T + Sync) -> Vec<T> {
+    let members = thread_group::group(p);
+    std::thread::scope(|s| {
+        let handles: Vec<_> = members.into_iter().map(|g| s.spawn(|| f(g))).collect();
+        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    })
 }
 
 fn configs() -> (LatentConfig, TrainConfig) {
@@ -69,26 +74,17 @@ fn max_relative_difference(a: &[f64], b: &[f64]) -> f64 {
 
 /// Trains in a group of `p` threads; returns each member's weights and history.
 fn train_in_group(p: usize, table: &Table) -> Vec<(Vec<f64>, Vec<EpochRecord>)> {
-    let members = thread_group::group(p);
-    std::thread::scope(|s| {
-        let handles: Vec<_> = members
-            .into_iter()
-            .map(|g| {
-                s.spawn(move || {
-                    let (m, t) = configs();
-                    let mut trainer = Trainer::new(table, m, t)
-                        .unwrap()
-                        .in_group(Box::new(g))
-                        .unwrap();
-                    trainer.fit().unwrap();
-                    (
-                        weights(trainer.model().latent().varmap()),
-                        trainer.history().epochs.clone(),
-                    )
-                })
-            })
-            .collect();
-        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    in_group(p, |g| {
+        let (m, t) = configs();
+        let mut trainer = Trainer::new(table, m, t)
+            .unwrap()
+            .in_group(Box::new(g))
+            .unwrap();
+        trainer.fit().unwrap();
+        (
+            weights(trainer.model().latent().varmap()),
+            trainer.history().epochs.clone(),
+        )
     })
 }
 
@@ -124,24 +120,15 @@ fn two_and_three_processes_train_the_model_one_process_trains() {
 
 #[test]
 fn a_group_is_refused_when_a_process_has_another_table_or_too_few_rows() {
-    let members = thread_group::group(2);
-    let errors: Vec<String> = std::thread::scope(|s| {
-        let handles: Vec<_> = members
-            .into_iter()
-            .map(|g| {
-                s.spawn(move || {
-                    // Process 1 reads a table with one more row.
-                    let t = table(300 + g.rank());
-                    let (m, c) = configs();
-                    Trainer::new(&t, m, c)
-                        .unwrap()
-                        .in_group(Box::new(g))
-                        .unwrap_err()
-                        .to_string()
-                })
-            })
-            .collect();
-        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    let errors = in_group(2, |g| {
+        // Process 1 reads a table with one more row.
+        let t = table(300 + g.rank());
+        let (m, c) = configs();
+        Trainer::new(&t, m, c)
+            .unwrap()
+            .in_group(Box::new(g))
+            .unwrap_err()
+            .to_string()
     });
     for e in &errors {
         assert!(e.contains("process(es) 1 of 2"), "{e}");
@@ -149,25 +136,15 @@ fn a_group_is_refused_when_a_process_has_another_table_or_too_few_rows() {
     }
     // More processes than training rows.
     let t = table(4);
-    let members = thread_group::group(5);
-    let errors: Vec<String> = std::thread::scope(|s| {
-        let handles: Vec<_> = members
-            .into_iter()
-            .map(|g| {
-                let t = &t;
-                s.spawn(move || {
-                    let (m, mut c) = configs();
-                    c.batch_size = 1;
-                    c.validation_fraction = 0.0;
-                    Trainer::new(t, m, c)
-                        .unwrap()
-                        .in_group(Box::new(g))
-                        .unwrap_err()
-                        .to_string()
-                })
-            })
-            .collect();
-        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    let errors = in_group(5, |g| {
+        let (m, mut c) = configs();
+        c.batch_size = 1;
+        c.validation_fraction = 0.0;
+        Trainer::new(&t, m, c)
+            .unwrap()
+            .in_group(Box::new(g))
+            .unwrap_err()
+            .to_string()
     });
     for e in &errors {
         assert!(e.contains("5 processes for 4 training rows"), "{e}");
@@ -191,23 +168,13 @@ fn the_sampler_trains_the_same_control_in_a_group() {
     let mut alone = Sampler::new(target.clone(), cfg.clone()).unwrap();
     alone.fit().unwrap();
     let w1 = weights(alone.varmap());
-    let members = thread_group::group(2);
-    let ws: Vec<Vec<f64>> = std::thread::scope(|s| {
-        let handles: Vec<_> = members
-            .into_iter()
-            .map(|g| {
-                let (target, cfg) = (target.clone(), cfg.clone());
-                s.spawn(move || {
-                    let mut sm = Sampler::new(target, cfg)
-                        .unwrap()
-                        .in_group(Box::new(g))
-                        .unwrap();
-                    sm.fit().unwrap();
-                    weights(sm.varmap())
-                })
-            })
-            .collect();
-        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    let ws = in_group(2, |g| {
+        let mut sm = Sampler::new(target.clone(), cfg.clone())
+            .unwrap()
+            .in_group(Box::new(g))
+            .unwrap();
+        sm.fit().unwrap();
+        weights(sm.varmap())
     });
     assert_eq!(ws[0], ws[1]);
     let diff = max_relative_difference(&w1, &ws[0]);
@@ -222,23 +189,13 @@ fn results_do_not_depend_on_how_rows_are_chunked_for_validation() {
     let (m, c) = configs();
     let alone = Trainer::new(&t, m, c).unwrap();
     let e1 = alone.state().best_elbo.unwrap();
-    let members = thread_group::group(3);
-    let e3: Vec<f64> = std::thread::scope(|s| {
-        let handles: Vec<_> = members
-            .into_iter()
-            .map(|g| {
-                let t = &t;
-                s.spawn(move || {
-                    let (m, c) = configs();
-                    let mut tr = Trainer::new(t, m, c)
-                        .unwrap()
-                        .in_group(Box::new(g))
-                        .unwrap();
-                    tr.run_epoch().unwrap().val_elbo.unwrap()
-                })
-            })
-            .collect();
-        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    let e3 = in_group(3, |g| {
+        let (m, c) = configs();
+        let mut tr = Trainer::new(&t, m, c)
+            .unwrap()
+            .in_group(Box::new(g))
+            .unwrap();
+        tr.run_epoch().unwrap().val_elbo.unwrap()
     });
     let mut alone = alone;
     let v1 = alone.run_epoch().unwrap().val_elbo.unwrap();

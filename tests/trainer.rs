@@ -9,13 +9,7 @@ use common::*;
 use neural_sde::*;
 
 fn table(n: usize) -> Table {
-    // Demo rows from a fixed generator: a correlated Gaussian.
-    let z = standard_normals(&mut generator(8, 0), n * 2);
-    let rows = z
-        .chunks_exact(2)
-        .map(|e| vec![10.0 + 2.0 * e[0], -3.0 + 0.5 * (0.8 * e[0] + 0.6 * e[1])])
-        .collect();
-    Table::new(vec!["x".into(), "y".into()], rows).unwrap()
+    correlated_table(n)
 }
 
 fn small() -> (LatentConfig, TrainConfig) {

@@ -23,7 +23,7 @@ use crate::sampler::ratio::LogDensityRatio;
 use crate::sampler::target::LogDensity;
 use crate::sde::diffusion::Diffusion;
 use crate::sde::drift::{Drift, TimeMlp};
-use crate::sde::objective::FreeEnergy;
+use crate::sde::objective::{FreeEnergy, FreeEnergyValues};
 use crate::sde::solver::{simulate, Sde};
 use crate::util::rng::{generator, key2, streams};
 
@@ -343,7 +343,7 @@ impl Sampler {
             lr,
             self.cfg.optimizer.max_grad_norm,
             self.group.as_ref(),
-            3,
+            FreeEnergyValues::PARTS,
             move || {
                 let Some(noise) = noise else {
                     return Ok(None);
@@ -351,24 +351,11 @@ impl Sampler {
                 let x0 = Tensor::zeros((keys.len(), d), dtype, &Device::Cpu)?;
                 let paths = simulate(&sde, solver, &x0, &noise, None)?;
                 let fe = FreeEnergy::new(&paths, terminal, None)?;
-                let v = fe.values()?;
-                let loss = if part == 1.0 {
-                    fe.loss
-                } else {
-                    fe.loss.affine(part, 0.0)?
-                };
-                let figures = vec![v.loss * part, v.control_cost * part, v.terminal_cost * part];
+                let (loss, figures) = fe.share(part)?;
                 Ok(Some((loss, (), figures)))
             },
         )
-        .map(|(_, f, stats)| {
-            let v = crate::sde::objective::FreeEnergyValues {
-                loss: f[0],
-                control_cost: f[1],
-                terminal_cost: f[2],
-            };
-            (v, stats)
-        });
+        .map(|(_, f, stats)| (FreeEnergyValues::from_parts(&f), stats));
         match outcome {
             Ok((v, stats)) => {
                 let record = SamplerRecord {

@@ -86,4 +86,40 @@ impl FreeEnergy {
         }
         Ok(v)
     }
+
+    /// This batch's part of a minibatch split between processes: the loss scaled by `part`
+    /// (this batch's share of the minibatch's rows, so that the parts sum to the minibatch
+    /// mean; exactly the loss when `part` is 1) and the figures of [`FreeEnergy::values`]
+    /// scaled alike, as the flat list `[loss, control cost, terminal cost]` that is summed
+    /// over the processes and read back with [`FreeEnergyValues::from_parts`].
+    ///
+    /// # Errors
+    /// As [`FreeEnergy::values`].
+    pub(crate) fn share(self, part: f64) -> Result<(Tensor, Vec<f64>)> {
+        let v = self.values()?;
+        let loss = if part == 1.0 {
+            self.loss
+        } else {
+            self.loss.affine(part, 0.0)?
+        };
+        Ok((
+            loss,
+            vec![v.loss * part, v.control_cost * part, v.terminal_cost * part],
+        ))
+    }
+}
+
+impl FreeEnergyValues {
+    /// Number of figures [`FreeEnergy::share`] gives.
+    pub(crate) const PARTS: usize = 3;
+
+    /// The minibatch's values from the summed figures of [`FreeEnergy::share`].
+    pub(crate) fn from_parts(f: &[f64]) -> Self {
+        let at = |i: usize| f.get(i).copied().unwrap_or(f64::NAN);
+        Self {
+            loss: at(0),
+            control_cost: at(1),
+            terminal_cost: at(2),
+        }
+    }
 }

@@ -77,3 +77,15 @@ pub fn follmer_gaussian_diag(m: &[f64], s: &[f64], x: &[f64], t: f64) -> Vec<f64
         .map(|i| (m[i] + (s[i] - 1.0) * x[i]) / (1.0 + (s[i] - 1.0) * t))
         .collect()
 }
+
+/// Demo rows from a fixed generator (not a check): a correlated Gaussian in two columns,
+/// `x = 10 + 2 e₁`, `y = −3 + 0.5 (0.8 e₁ + 0.6 e₂)`.
+pub fn correlated_table(n: usize) -> neural_sde::Table {
+    use neural_sde::{generator, standard_normals};
+    let z = standard_normals(&mut generator(8, 0), n * 2);
+    let rows = z
+        .chunks_exact(2)
+        .map(|e| vec![10.0 + 2.0 * e[0], -3.0 + 0.5 * (0.8 * e[0] + 0.6 * e[1])])
+        .collect();
+    neural_sde::Table::new(vec!["x".into(), "y".into()], rows).unwrap()
+}

@@ -746,31 +746,18 @@ impl Trainer {
             lr,
             self.train_cfg.optimizer.max_grad_norm,
             self.group.as_ref(),
-            3,
+            FreeEnergyValues::PARTS,
             move || {
                 let Some((y, rows)) = local else {
                     return Ok(None);
                 };
                 let keys: Vec<u64> = rows.iter().map(|&r| key2(step, r)).collect();
                 let fe = model.free_energy_keyed(&y, seed, &keys)?;
-                let v = fe.values()?;
-                let loss = if part == 1.0 {
-                    fe.loss
-                } else {
-                    fe.loss.affine(part, 0.0)?
-                };
-                let figures = vec![v.loss * part, v.control_cost * part, v.terminal_cost * part];
+                let (loss, figures) = fe.share(part)?;
                 Ok(Some((loss, (), figures)))
             },
         )
-        .map(|(_, f, stats)| {
-            let v = FreeEnergyValues {
-                loss: f[0],
-                control_cost: f[1],
-                terminal_cost: f[2],
-            };
-            (v, stats)
-        });
+        .map(|(_, f, stats)| (FreeEnergyValues::from_parts(&f), stats));
         match outcome {
             Ok((v, stats)) => {
                 run.sums.add(&v, stats.grad_norm);
