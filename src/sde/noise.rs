@@ -49,24 +49,7 @@ impl BrownianIncrements {
         dtype: DType,
         dev: &Device,
     ) -> Result<Self> {
-        if batch == 0 {
-            return Err(Error::config("batch", batch, "simulate at least 1 path"));
-        }
-        if dim == 0 {
-            return Err(Error::config(
-                "dim",
-                dim,
-                "the state needs at least 1 dimension",
-            ));
-        }
-        if n_steps == 0 {
-            return Err(Error::config(
-                "n_steps",
-                n_steps,
-                "use at least 1 solver step",
-            ));
-        }
-        crate::error::check_positive("t_end", t_end)?;
+        check_grid(batch, dim, n_steps, t_end)?;
         let n = batch * dim;
         let xi1: Vec<Vec<f64>> = (0..n_steps).map(|_| standard_normals(rng, n)).collect();
         let xi2 = with_area.then(|| {
@@ -101,14 +84,7 @@ impl BrownianIncrements {
         dev: &Device,
     ) -> Result<Self> {
         let batch = keys.len();
-        if batch == 0 || dim == 0 || n_steps == 0 {
-            return Err(Error::config(
-                "batch, dim, n_steps",
-                format!("{batch}, {dim}, {n_steps}"),
-                "simulate at least 1 path of 1 dimension over 1 step",
-            ));
-        }
-        crate::error::check_positive("t_end", t_end)?;
+        check_grid(batch, dim, n_steps, t_end)?;
         let per = n_steps * dim;
         // Each path's draws depend only on its key, so they are made in parallel, and so is
         // the assembly of each step's (batch, dim) block (on one thread, or for few values,
@@ -252,4 +228,26 @@ impl BrownianIncrements {
     pub fn dz(&self) -> Option<&[Tensor]> {
         self.dz.as_deref()
     }
+}
+
+/// Refuses an empty batch, state or grid, and a non-positive horizon.
+fn check_grid(batch: usize, dim: usize, n_steps: usize, t_end: f64) -> Result<()> {
+    if batch == 0 {
+        return Err(Error::config("batch", batch, "simulate at least 1 path"));
+    }
+    if dim == 0 {
+        return Err(Error::config(
+            "dim",
+            dim,
+            "the state needs at least 1 dimension",
+        ));
+    }
+    if n_steps == 0 {
+        return Err(Error::config(
+            "n_steps",
+            n_steps,
+            "use at least 1 solver step",
+        ));
+    }
+    crate::error::check_positive("t_end", t_end)
 }
