@@ -92,15 +92,17 @@ pub fn on_root(
 }
 
 /// Refuses a group with more processes than `rows` (each process needs rows of its own) or a
-/// process whose `fingerprint` of the data and settings differs from process 0's.
+/// process whose `data` checksum or `settings` (hashed as JSON) differ from process 0's.
 ///
 /// # Errors
-/// [`Error::Collective`] naming the ranks or counts.
+/// [`Error::Collective`] naming the ranks or counts; [`Error::Json`] if the settings cannot
+/// be serialised.
 pub(crate) fn check_group(
     group: &dyn Collective,
     rows: usize,
     what: &str,
-    fingerprint: u64,
+    data: u64,
+    settings: &impl serde::Serialize,
 ) -> Result<()> {
     if group.size() > rows {
         return Err(Error::Collective(format!(
@@ -108,5 +110,8 @@ pub(crate) fn check_group(
             group.size()
         )));
     }
-    check_same(group, "table or settings", fingerprint)
+    let mut h = crate::util::hash::Fnv1a::new();
+    h.eat(&data.to_le_bytes());
+    h.eat(serde_json::to_string(settings)?.as_bytes());
+    check_same(group, "table or settings", h.finish())
 }

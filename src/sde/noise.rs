@@ -57,14 +57,25 @@ impl BrownianIncrements {
                 .map(|_| standard_normals(rng, n))
                 .collect::<Vec<_>>()
         });
-        Self::from_normals(
-            &xi1,
-            xi2.as_deref(),
-            t_end / n_steps as f64,
-            (batch, dim),
-            dtype,
-            dev,
-        )
+        let h = t_end / n_steps as f64;
+        let (mut dw, mut dz) = (Vec::with_capacity(n_steps), Vec::new());
+        for (k, a) in xi1.iter().enumerate() {
+            let (w, z) = step_block(
+                a,
+                xi2.as_ref().map(|b| b[k].as_slice()),
+                h,
+                (batch, dim),
+                dtype,
+                dev,
+            )?;
+            dw.push(w);
+            dz.extend(z);
+        }
+        Ok(Self {
+            dw,
+            dz: with_area.then_some(dz),
+            step: h,
+        })
     }
 
     /// As [`BrownianIncrements::sample`], with path `i`'s normals drawn from its own
@@ -107,73 +118,36 @@ impl BrownianIncrements {
             keys.iter().map(draw).collect()
         };
         let h = t_end / n_steps as f64;
-        let sh = h.sqrt();
-        let (c, r3) = (0.5 * h * sh, 1.0 / 3f64.sqrt());
-        // ΔW = √h ξ₁ and ΔZ = ½ h^{3/2} (ξ₁ + ξ₂/√3), as in `sample`.
-        let block = |k: usize, area: bool| -> Result<Tensor> {
-            let mut v = Vec::with_capacity(batch * dim);
-            for (a, b) in &drawn {
-                for j in k * dim..(k + 1) * dim {
-                    v.push(if area {
-                        c * (a[j] + b[j] * r3)
-                    } else {
-                        sh * a[j]
-                    });
+        // Step k's block gathers each path's k-th normals, then takes the same formula as
+        // `sample`.
+        let block = |k: usize| -> Result<(Tensor, Option<Tensor>)> {
+            // The k-th block of each path's ξ₁ (`second`: ξ₂).
+            let gather = |second: bool| -> Vec<f64> {
+                let mut v = Vec::with_capacity(batch * dim);
+                for (a, b) in &drawn {
+                    let xi = if second { b } else { a };
+                    v.extend_from_slice(&xi[k * dim..(k + 1) * dim]);
                 }
-            }
-            let t = if dtype == DType::F32 {
-                let v: Vec<f32> = v.iter().map(|&x| x as f32).collect();
-                Tensor::from_vec(v, (batch, dim), dev)?
-            } else {
-                Tensor::from_vec(v, (batch, dim), dev)?.to_dtype(dtype)?
+                v
             };
-            Ok(t)
+            let a = gather(false);
+            let b = with_area.then(|| gather(true));
+            step_block(&a, b.as_deref(), h, (batch, dim), dtype, dev)
         };
-        let blocks = |area: bool| -> Result<Vec<Tensor>> {
-            if parallel {
-                (0..n_steps)
-                    .into_par_iter()
-                    .map(|k| block(k, area))
-                    .collect()
-            } else {
-                (0..n_steps).map(|k| block(k, area)).collect()
-            }
+        let blocks: Vec<(Tensor, Option<Tensor>)> = if parallel {
+            (0..n_steps)
+                .into_par_iter()
+                .map(block)
+                .collect::<Result<_>>()?
+        } else {
+            (0..n_steps).map(block).collect::<Result<_>>()?
         };
-        let dw = blocks(false)?;
-        let dz = if with_area { Some(blocks(true)?) } else { None };
-        Ok(Self { dw, dz, step: h })
-    }
-
-    /// Increments `ΔW = √h ξ₁` and, given `ξ₂`, `ΔZ = ½ h^{3/2} (ξ₁ + ξ₂/√3)`, one
-    /// `(batch, dim)` block of normals per step.
-    fn from_normals(
-        xi1: &[Vec<f64>],
-        xi2: Option<&[Vec<f64>]>,
-        h: f64,
-        shape: (usize, usize),
-        dtype: DType,
-        dev: &Device,
-    ) -> Result<Self> {
-        let sh = h.sqrt();
-        let mut dw = Vec::with_capacity(xi1.len());
-        for xi in xi1 {
-            let v: Vec<f64> = xi.iter().map(|z| sh * z).collect();
-            dw.push(Tensor::from_vec(v, shape, dev)?.to_dtype(dtype)?);
-        }
-        let dz = match xi2 {
-            Some(xi2) => {
-                let c = 0.5 * h * sh;
-                let r3 = 1.0 / 3f64.sqrt();
-                let mut dz = Vec::with_capacity(xi1.len());
-                for (xi, xi2) in xi1.iter().zip(xi2) {
-                    let v: Vec<f64> = xi.iter().zip(xi2).map(|(a, b)| c * (a + b * r3)).collect();
-                    dz.push(Tensor::from_vec(v, shape, dev)?.to_dtype(dtype)?);
-                }
-                Some(dz)
-            }
-            None => None,
-        };
-        Ok(Self { dw, dz, step: h })
+        let (dw, dz): (Vec<Tensor>, Vec<Option<Tensor>>) = blocks.into_iter().unzip();
+        Ok(Self {
+            dw,
+            dz: with_area.then(|| dz.into_iter().flatten().collect()),
+            step: h,
+        })
     }
 
     /// Increments supplied by the caller (for instance aggregated from a finer grid).
@@ -250,4 +224,37 @@ fn check_grid(batch: usize, dim: usize, n_steps: usize, t_end: f64) -> Result<()
         ));
     }
     crate::error::check_positive("t_end", t_end)
+}
+
+/// One step's increments from its `(batch, dim)` block of normals: `ΔW = √h ξ₁` and, given
+/// `ξ₂`, `ΔZ = ½ h^{3/2} (ξ₁ + ξ₂/√3)` (Kloeden & Platen 1992, §10.4), as tensors of `dtype`
+/// (f32 built directly, with the rounding of a cast).
+fn step_block(
+    xi1: &[f64],
+    xi2: Option<&[f64]>,
+    h: f64,
+    shape: (usize, usize),
+    dtype: DType,
+    dev: &Device,
+) -> Result<(Tensor, Option<Tensor>)> {
+    let tensor = |v: Vec<f64>| -> Result<Tensor> {
+        Ok(if dtype == DType::F32 {
+            let v: Vec<f32> = v.iter().map(|&x| x as f32).collect();
+            Tensor::from_vec(v, shape, dev)?
+        } else {
+            Tensor::from_vec(v, shape, dev)?.to_dtype(dtype)?
+        })
+    };
+    let sh = h.sqrt();
+    let dw = tensor(xi1.iter().map(|z| sh * z).collect())?;
+    let dz = match xi2 {
+        Some(xi2) => {
+            let (c, r3) = (0.5 * h * sh, 1.0 / 3f64.sqrt());
+            Some(tensor(
+                xi1.iter().zip(xi2).map(|(a, b)| c * (a + b * r3)).collect(),
+            )?)
+        }
+        None => None,
+    };
+    Ok((dw, dz))
 }

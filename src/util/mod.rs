@@ -2,6 +2,7 @@
 //! linear algebra and the precision setting. Nothing here knows tensors of the SDE.
 
 pub(crate) mod fs;
+pub(crate) mod hash;
 pub mod limits;
 pub(crate) mod linalg;
 pub(crate) mod precision;

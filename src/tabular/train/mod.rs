@@ -205,28 +205,15 @@ impl std::fmt::Debug for Trainer {
     }
 }
 
-/// FNV-1a hash of bytes.
-fn fnv1a(bytes: &[u8]) -> u64 {
-    bytes.iter().fold(0xcbf2_9ce4_8422_2325, |h, &b| {
-        (h ^ u64::from(b)).wrapping_mul(0x0100_0000_01b3)
-    })
-}
-
 /// FNV-1a hash of the table's bit patterns and shape.
 fn fingerprint(table: &Table) -> u64 {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-    let mut eat = |x: u64| {
-        for b in x.to_le_bytes() {
-            h ^= u64::from(b);
-            h = h.wrapping_mul(0x0100_0000_01b3);
-        }
-    };
-    eat(table.n_rows() as u64);
-    eat(table.n_cols() as u64);
+    let mut h = crate::util::hash::Fnv1a::new();
+    h.eat(&(table.n_rows() as u64).to_le_bytes());
+    h.eat(&(table.n_cols() as u64).to_le_bytes());
     for v in table.values() {
-        eat(v.to_bits());
+        h.eat(&v.to_bits().to_le_bytes());
     }
-    h
+    h.finish()
 }
 
 impl Trainer {
@@ -527,14 +514,12 @@ impl Trainer {
     /// [`Error::Collective`] when a process holds another table or other settings than
     /// process 0, or there are more processes than training rows.
     pub fn in_group(mut self, group: Box<dyn Collective>) -> Result<Self> {
-        let settings = serde_json::to_string(&(&self.train_cfg, self.model.model.config()))?;
-        let fingerprint =
-            crate::util::rng::key2(self.state.table_fingerprint, fnv1a(settings.as_bytes()));
         check_group(
             group.as_ref(),
             self.train_rows.len(),
             "training rows",
-            fingerprint,
+            self.state.table_fingerprint,
+            &(&self.train_cfg, self.model.model.config()),
         )?;
         self.group = group;
         Ok(self)
