@@ -115,13 +115,16 @@ pub use tabular::csv_io::HeaderLine;
 pub use tabular::demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
 pub use tabular::evaluation::{EvalOptions, Evaluation};
 pub use tabular::fitted::TabularModel;
+pub use tabular::impute::{CellEstimate, Imputation, ImputeOptions};
 pub use tabular::mixture::{Covariance, MixtureModel, MixtureOptions};
 pub use tabular::model::{
     Decoder, DecoderConfig, DecoderKind, LatentConfig, LatentModel, PathTerms, PriorFactory,
+    RowLayout,
 };
 pub use tabular::scaler::Standardizer;
+pub use tabular::schema::{ColumnKind, ColumnRules, Schema};
 pub use tabular::summary::{inspect_checkpoint, CheckpointSummary};
-pub use tabular::table::Table;
+pub use tabular::table::{write_draws_csv, Table};
 pub use tabular::train::{
     EpochRecord, History, Observer, StepInfo, TrainConfig, TrainReport, TrainState, Trainer,
 };

@@ -118,14 +118,15 @@ fn bad_inputs_exit_2_with_one_line_and_write_nothing() {
         &["/no/such/file.csv", "not found"],
     );
     std::fs::write(d.join("text.csv"), "a,b\n1,2\n3,x\n").unwrap();
+    // A text cell makes a column categorical, unless it is declared continuous.
     assert_input_error(
-        &fit(&[d.join("text.csv").to_str().unwrap()]),
-        &["line 3", "column 'b'"],
+        &fit(&[d.join("text.csv").to_str().unwrap(), "--continuous", "b"]),
+        &["line 3", "column 'b'", "declared continuous", "'x'"],
     );
     std::fs::write(
         d.join("ok.csv"),
         (0..200)
-            .map(|i| format!("{},{}\n", i, (i * 7) % 13))
+            .map(|i| format!("{},{}.5\n", i, (i * 7) % 13))
             .fold("a,b\n".to_string(), |s, l| s + &l),
     )
     .unwrap();

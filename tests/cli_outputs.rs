@@ -8,7 +8,7 @@ use std::path::{Path, PathBuf};
 fn table(d: &Path) -> PathBuf {
     let p = d.join("data.csv");
     let body: String = (0..120)
-        .map(|i| format!("{},{}\n", i % 17, (i * 7) % 13))
+        .map(|i| format!("{}.5,{}.25\n", i % 17, (i * 7) % 13))
         .collect();
     std::fs::write(&p, format!("a,b\n{body}")).unwrap();
     p

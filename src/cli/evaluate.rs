@@ -49,8 +49,13 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
         // A file is read a chunk of rows at a time: memory does not grow with its length.
         (Some(path), false) if a.baseline.is_none() => model.evaluate_csv(path, header, options)?,
         _ => {
-            let table =
-                super::load_table_with(a.data.as_deref(), a.demo, Some(model.columns()), header)?;
+            let table = super::load_table_with(
+                a.data.as_deref(),
+                a.demo,
+                Some(model.columns()),
+                header,
+                super::Reading::Schema(model.schema()),
+            )?;
             let e = model.evaluate(&table, options)?;
             if let Some(train) = &a.baseline {
                 baselines = compare_with_baselines(&model, train, header, &table, &e)?;
@@ -62,6 +67,7 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
         let v = serde_json::json!({
             "rows": e.rows,
             "dims": e.dims,
+            "observed_cells": e.observed_cells,
             "paths": e.paths,
             "elbo_per_row": e.elbo_per_row,
             "elbo_per_dim": e.elbo_per_dim,
@@ -109,6 +115,11 @@ fn compare_with_baselines(
     e: &neural_sde::Evaluation,
 ) -> Result<Vec<Baseline>, Failure> {
     use neural_sde::{Covariance, MixtureModel, MixtureOptions};
+    if !model.schema().all_continuous() || table.has_missing() {
+        return Err(Failure::input(
+            "--baseline fits Gaussian mixtures, which need continuous columns without missing cells; leave it out for this table",
+        ));
+    }
     let train = neural_sde::Table::from_csv_with_header(train, Some(model.columns()), header)?;
     let options = MixtureOptions::default();
     let fits = [

@@ -15,7 +15,8 @@ use super::{fraction, positive_f64, positive_usize, Failure};
 
 #[derive(Debug, Args)]
 pub struct FitArgs {
-    /// CSV file with a header line and numeric columns.
+    /// CSV file with a header line: continuous and categorical columns, missing cells empty or
+    /// NA.
     data: Option<PathBuf>,
     /// Fit the built-in demo table (synthetic greenhouse readings, 2,000 rows × 5 columns).
     #[arg(long)]
@@ -83,6 +84,17 @@ pub struct FitArgs {
     /// taken from the checkpoint).
     #[arg(long)]
     resume: Option<PathBuf>,
+    /// Columns to treat as categorical (comma-separated), whatever they hold. By default a
+    /// column with a non-numeric cell, or whose values are all integers with at most 20
+    /// distinct values, is categorical; every other column is continuous.
+    #[arg(long, value_delimiter = ',')]
+    categorical: Vec<String>,
+    /// Columns to treat as continuous (comma-separated), e.g. an integer count with few values.
+    #[arg(long, value_delimiter = ',')]
+    continuous: Vec<String>,
+    /// A cell text that marks a missing cell, besides the empty cell and NA (repeat for more).
+    #[arg(long = "missing-marker")]
+    missing_marker: Vec<String>,
     /// Also write the training checkpoint to --out every N epochs while fitting (atomically),
     /// so that a killed fit can be continued with --resume.
     #[arg(long, value_parser = positive_usize)]
@@ -126,7 +138,34 @@ fn prepare(
         .output("--plot", a.plot.as_deref())
         .check()?;
     let header = super::header_line(a.header, a.no_header)?;
-    let table = super::load_table_with(a.data.as_deref(), a.demo, a.columns.as_deref(), header)?;
+    let table = match &a.resume {
+        // Resuming reads the table with the checkpoint's column types.
+        Some(ck) if a.data.is_some() => {
+            let info = neural_sde::inspect_checkpoint(ck)?;
+            super::load_table_with(
+                a.data.as_deref(),
+                a.demo,
+                Some(&info.columns),
+                header,
+                super::Reading::Schema(&info.schema),
+            )?
+        }
+        _ => {
+            let rules = neural_sde::ColumnRules {
+                categorical: a.categorical.clone(),
+                continuous: a.continuous.clone(),
+                missing_markers: a.missing_marker.clone(),
+                ..neural_sde::ColumnRules::default()
+            };
+            super::load_table_with(
+                a.data.as_deref(),
+                a.demo,
+                a.columns.as_deref(),
+                header,
+                super::Reading::Typed(&rules),
+            )?
+        }
+    };
     let batch_size = a.batch_size.unwrap_or(if table.n_rows() >= BIG_TABLE_ROWS {
         1024
     } else {

@@ -20,11 +20,32 @@ pub fn run(a: InspectArgs) -> Result<(), Failure> {
         info.crate_version, info.format, info.format_version
     );
     println!("columns        {}", info.columns.len());
-    println!("  {:<24} {:>14} {:>14}", "name", "mean", "scale");
-    for (j, c) in info.columns.iter().enumerate() {
+    println!(
+        "  {:<24} {:<12} {:>14} {:>14}",
+        "name", "type", "mean", "scale"
+    );
+    let mut c = 0;
+    for (name, kind) in info.columns.iter().zip(&info.schema.kinds) {
+        match kind.levels() {
+            None => {
+                println!(
+                    "  {:<24} {:<12} {:>14.6} {:>14.6}",
+                    name, "continuous", info.scaler.mean[c], info.scaler.scale[c]
+                );
+                c += 1;
+            }
+            Some(levels) => println!(
+                "  {:<24} {:<12} levels: {}",
+                name,
+                "categorical",
+                levels.join(", ")
+            ),
+        }
+    }
+    if !info.schema.missing_markers.is_empty() {
         println!(
-            "  {:<24} {:>14.6} {:>14.6}",
-            c, info.scaler.mean[j], info.scaler.scale[j]
+            "missing cells  empty, NA, {}",
+            info.schema.missing_markers.join(", ")
         );
     }
     println!("parameters     {}", info.parameters);

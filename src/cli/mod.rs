@@ -4,6 +4,7 @@ mod evaluate;
 mod files;
 mod fit;
 mod group;
+mod impute;
 mod inspect;
 mod progress;
 mod sample;
@@ -12,8 +13,9 @@ use std::path::Path;
 
 use clap::{Parser, Subcommand};
 
-/// Fit latent-diffusion (neural SDE) models to numeric CSV tables, then evaluate them and
-/// generate new rows. Fitted models can mislead: validate them before relying on them.
+/// Fit latent-diffusion (neural SDE) models to CSV tables (continuous and categorical
+/// columns, missing cells allowed), then evaluate them, generate new rows and fill in missing
+/// cells. Fitted models can mislead: validate them before relying on them.
 #[derive(Debug, Parser)]
 #[command(name = "neural-sde", version)]
 pub struct Cli {
@@ -30,11 +32,14 @@ pub struct Cli {
 enum Command {
     /// Fit a model to a table (or to the built-in synthetic demo table with --demo). Under
     /// `mpirun -np P` (built with the `mpi` feature) the P processes train one model together.
-    Fit(fit::FitArgs),
+    Fit(Box<fit::FitArgs>),
     /// ELBO and importance-weighted log-likelihood of a model on a table, in the data's units.
     Evaluate(evaluate::EvaluateArgs),
-    /// Generate new rows from a model.
+    /// Generate new rows from a model, optionally conditioned on some cells (--given).
     Sample(sample::SampleArgs),
+    /// Fill in the missing cells of a table with draws from the model's conditional
+    /// distribution given each row's observed cells.
+    Impute(impute::ImputeArgs),
     /// Show a model's configuration, columns, scaler and training summary.
     Inspect(inspect::InspectArgs),
 }
@@ -116,9 +121,10 @@ pub fn run() -> i32 {
     let threads = cli.threads;
     let result = match cli.command {
         // `fit` sets the thread count once it knows the batch size.
-        Command::Fit(a) => fit::run(a, threads),
+        Command::Fit(a) => fit::run(*a, threads),
         Command::Evaluate(a) => set_threads(threads, cores()).and_then(|()| evaluate::run(a)),
         Command::Sample(a) => set_threads(threads, cores()).and_then(|()| sample::run(a)),
+        Command::Impute(a) => set_threads(threads, cores()).and_then(|()| impute::run(a)),
         Command::Inspect(a) => set_threads(threads, 1).and_then(|()| inspect::run(a)),
     };
     match result {
@@ -163,6 +169,14 @@ pub fn header_line(header: bool, no_header: bool) -> Result<neural_sde::HeaderLi
     }
 }
 
+/// How a CSV file's cells are read.
+pub enum Reading<'a> {
+    /// Column types guessed by these rules (fit).
+    Typed(&'a neural_sde::ColumnRules),
+    /// The types of a fitted model.
+    Schema(&'a neural_sde::Schema),
+}
+
 /// Loads a CSV table or the demo table, keeping `columns` when given; `header` says whether
 /// the CSV file's first line names the columns.
 pub fn load_table_with(
@@ -170,6 +184,7 @@ pub fn load_table_with(
     demo: bool,
     columns: Option<&[String]>,
     header: neural_sde::HeaderLine,
+    reading: Reading<'_>,
 ) -> Result<neural_sde::Table, Failure> {
     match (data, demo) {
         (Some(_), true) => Err(Failure::input(
@@ -181,9 +196,24 @@ pub fn load_table_with(
         (Some(p), false) => {
             // A bar for files that take more than a moment to read (progress::loading).
             let mut bar = progress::Loading::new(p);
-            let t = neural_sde::Table::from_csv_reporting(p, columns, header, &mut |at, all| {
-                bar.update(at, all)
-            });
+            let t = match reading {
+                Reading::Typed(rules) => neural_sde::Table::from_csv_typed_reporting(
+                    p,
+                    columns,
+                    header,
+                    rules,
+                    &mut |at, all| bar.update(at, all),
+                ),
+                Reading::Schema(schema) => {
+                    let Some(c) = columns else {
+                        bar.finish();
+                        return Err(Failure::input(
+                            "internal: a model's schema needs its columns",
+                        ));
+                    };
+                    neural_sde::Table::from_csv_schema(p, c, header, schema)
+                }
+            };
             bar.finish();
             Ok(t?)
         }

@@ -36,6 +36,15 @@ pub struct SampleArgs {
     /// Draw the built-in demo table beside the generated rows.
     #[arg(long)]
     demo: bool,
+    /// Generate rows conditioned on these cells, `column=value[,column=value…]` (a number for
+    /// a continuous column, a level for a categorical one): the other cells are drawn from the
+    /// model's conditional distribution given them (see `impute`).
+    #[arg(long, value_delimiter = ',')]
+    given: Vec<String>,
+    /// Posterior paths per row for --given; more paths give rows closer to the model's
+    /// conditional.
+    #[arg(long, default_value_t = 256, value_parser = positive_usize)]
+    paths: usize,
 }
 
 pub fn run(a: SampleArgs) -> Result<(), Failure> {
@@ -52,12 +61,40 @@ pub fn run(a: SampleArgs) -> Result<(), Failure> {
             a.demo,
             Some(model.columns()),
             super::header_line(a.header, a.no_header)?,
+            super::Reading::Schema(model.schema()),
         )?)
     } else {
         None
     };
-    // Streamed to the file; the plot shows the first rows.
-    let first = model.generate_csv(&a.out, a.rows, a.seed)?;
+    let first = if a.given.is_empty() {
+        // Streamed to the file; the plot shows the first rows.
+        model.generate_csv(&a.out, a.rows, a.seed)?
+    } else {
+        let mut given = Vec::new();
+        for g in &a.given {
+            let Some((c, v)) = g.split_once('=') else {
+                return Err(Failure::input(format!(
+                    "--given '{}': write column=value",
+                    g.chars().take(100).collect::<String>()
+                )));
+            };
+            given.push((c.trim().to_string(), v.trim().to_string()));
+        }
+        let options = neural_sde::ImputeOptions {
+            paths: a.paths,
+            draws: 1,
+            seed: a.seed,
+        };
+        let result = model.generate_given(a.rows, &given, options)?;
+        let t = result
+            .tables
+            .into_iter()
+            .next()
+            .ok_or_else(|| Failure::input("no rows drawn"))?;
+        t.write_csv(&a.out)?;
+        super::impute::report_ess(&result.ess, a.paths, |_| true);
+        t
+    };
     if let Some(p) = &a.plot {
         neural_sde::plot::pairs_svg(&first, reference.as_ref(), 4, p)?;
     }

@@ -2,6 +2,8 @@
 
 use std::path::Path;
 
+use super::schema::{ColumnKind, ColumnRules, Schema};
+use super::survey::{is_missing, non_finite_message, number_cell, ColumnSurvey, NumberCell};
 use super::table::{check_names, column_indices, Table};
 use crate::error::{Error, Result};
 use crate::util::text::clip;
@@ -60,6 +62,95 @@ impl Table {
     }
 }
 
+impl Table {
+    /// Reads a CSV file whose columns may be categorical and whose cells may be missing,
+    /// choosing each column's type by `rules` (see [`ColumnRules`]); keeps the named
+    /// `columns` (all when `None`). The file is read twice: once to learn the types, once
+    /// for the values.
+    ///
+    /// # Errors
+    /// As [`Table::from_csv`]; and, naming the column and what to do: a column with no
+    /// observed cell, a categorical column with one level or more than
+    /// [`ColumnRules::max_levels`], a declared column that does not exist, a text cell in a
+    /// column declared continuous, a `NaN` or infinite literal (see
+    /// [`ColumnRules::missing_markers`]).
+    ///
+    /// # Example
+    /// ```
+    /// # let dir = std::env::temp_dir().join(format!("nsde-typed-doc-{}", std::process::id()));
+    /// # std::fs::create_dir_all(&dir)?;
+    /// let path = dir.join("t.csv");
+    /// std::fs::write(&path, "height,colour,count\n1.5,red,1\n2.25,,2\nNA,blue,1\n")?;
+    /// let t = neural_sde::Table::from_csv_typed(&path, None, Default::default(), &Default::default())?;
+    /// assert_eq!(t.kinds()[1].levels().unwrap(), ["blue", "red"]);
+    /// assert!(t.kinds()[2].is_categorical()); // integers with few values
+    /// assert!(t.row(1)[1].is_nan() && t.row(2)[0].is_nan()); // missing cells
+    /// # std::fs::remove_dir_all(&dir)?;
+    /// # Ok::<(), Box<dyn std::error::Error>>(())
+    /// ```
+    pub fn from_csv_typed(
+        path: impl AsRef<Path>,
+        columns: Option<&[String]>,
+        header: HeaderLine,
+        rules: &ColumnRules,
+    ) -> Result<Self> {
+        Self::from_csv_typed_reporting(path, columns, header, rules, &mut |_, _| {})
+    }
+
+    /// As [`Table::from_csv_typed`], calling `progress(bytes_read, file_bytes)` during the
+    /// second pass.
+    ///
+    /// # Errors
+    /// As [`Table::from_csv_typed`].
+    pub fn from_csv_typed_reporting(
+        path: impl AsRef<Path>,
+        columns: Option<&[String]>,
+        header: HeaderLine,
+        rules: &ColumnRules,
+        progress: &mut dyn FnMut(u64, u64),
+    ) -> Result<Self> {
+        let path = path.as_ref();
+        rules.validate()?;
+        let mut survey = CsvRows::open(path, columns, header)?;
+        let names = survey.columns();
+        for declared in rules.categorical.iter().chain(&rules.continuous) {
+            if !names.contains(declared) {
+                return Err(survey.error(format!(
+                    "column '{}' is declared --categorical or --continuous but is not among the columns read ({}); check its name",
+                    clip(declared),
+                    clip(&names.join(", "))
+                )));
+            }
+        }
+        let kinds = survey.survey(rules)?;
+        let schema = Schema {
+            kinds,
+            missing_markers: rules.missing_markers.clone(),
+        };
+        let mut rows = CsvRows::open(path, columns, header)?.typed(&schema);
+        let mut t = read_rows(&mut rows, progress, schema.kinds)?;
+        t.set_missing_markers(schema.missing_markers);
+        Ok(t)
+    }
+
+    /// Reads a CSV file with the columns and types of `schema` (a fitted model's, say):
+    /// categorical cells must be known levels; missing cells are allowed.
+    ///
+    /// # Errors
+    /// As [`Table::from_csv`]; a level not in the schema, naming the line, column and value.
+    pub fn from_csv_schema(
+        path: impl AsRef<Path>,
+        columns: &[String],
+        header: HeaderLine,
+        schema: &Schema,
+    ) -> Result<Self> {
+        let mut rows = CsvRows::open(path.as_ref(), Some(columns), header)?.typed(schema);
+        let mut t = read_rows(&mut rows, &mut |_, _| {}, schema.kinds.clone())?;
+        t.set_missing_markers(schema.missing_markers.clone());
+        Ok(t)
+    }
+}
+
 /// Rows read between two calls of the progress callback.
 const PROGRESS_EVERY: usize = 65_536;
 
@@ -70,6 +161,15 @@ fn read(
     progress: &mut dyn FnMut(u64, u64),
 ) -> Result<Table> {
     let mut rows = CsvRows::open(path, select, header_line)?;
+    let kinds = vec![ColumnKind::Continuous; rows.width()];
+    read_rows(&mut rows, progress, kinds)
+}
+
+fn read_rows(
+    rows: &mut CsvRows,
+    progress: &mut dyn FnMut(u64, u64),
+    kinds: Vec<ColumnKind>,
+) -> Result<Table> {
     let mut values: Vec<f64> = Vec::new();
     let mut n = 0usize;
     loop {
@@ -99,7 +199,7 @@ fn read(
         values.shrink_to_fit();
     }
     let names = rows.columns();
-    Table::from_flat(names, values, path.to_path_buf())
+    Table::from_typed(names, values, kinds, rows.path.clone())
 }
 
 /// A CSV file read a batch of rows at a time, straight into flat vectors of values (no copy
@@ -113,6 +213,9 @@ pub(crate) struct CsvRows {
     records: usize,
     rec: csv::ByteRecord,
     total: u64,
+    /// The kept columns' kinds and the missing-cell markers, for a typed read (`None`: every
+    /// cell must be a finite number).
+    typed: Option<(Vec<ColumnKind>, Vec<String>)>,
 }
 
 impl CsvRows {
@@ -187,7 +290,112 @@ impl CsvRows {
             records: 0,
             rec: csv::ByteRecord::new(),
             total,
+            typed: None,
         })
+    }
+
+    /// Reads cells by `schema` (kinds of the kept columns, in order): missing cells become
+    /// `NaN`, categorical cells their level's index.
+    pub(crate) fn typed(mut self, schema: &Schema) -> Self {
+        self.typed = Some((schema.kinds.clone(), schema.missing_markers.clone()));
+        self
+    }
+
+    /// First pass of a typed read: each kept column's type under `rules`.
+    fn survey(&mut self, rules: &ColumnRules) -> Result<Vec<ColumnKind>> {
+        let mut cols: Vec<ColumnSurvey> = (0..self.keep.len())
+            .map(|_| ColumnSurvey::default())
+            .collect();
+        loop {
+            let line = self.records + self.first_line;
+            let more = self
+                .reader
+                .read_byte_record(&mut self.rec)
+                .map_err(|e| self.error(format!("line {line}: {}", clip(&e.to_string()))))?;
+            if !more {
+                break;
+            }
+            self.records += 1;
+            if self.rec.len() == 1 && self.rec.get(0).is_some_and(<[u8]>::is_empty) {
+                continue;
+            }
+            self.check_width(line)?;
+            for (c, &j) in self.keep.iter().enumerate() {
+                let text = self.cell_text(j, line)?;
+                if is_missing(&rules.missing_markers, text) {
+                    continue;
+                }
+                if let Err(why) = cols[c].add(text, line, rules.max_levels) {
+                    return Err(self.error(format!(
+                        "line {line}, column '{}': {why}",
+                        clip(&self.header[j])
+                    )));
+                }
+            }
+        }
+        let names = self.columns();
+        cols.iter()
+            .zip(&names)
+            .map(|(c, n)| c.kind(n, rules).map_err(|r| self.error(r)))
+            .collect()
+    }
+
+    fn check_width(&self, line: usize) -> Result<()> {
+        if self.rec.len() != self.header.len() {
+            return Err(self.error(format!(
+                "line {line} has {} fields but the header has {} columns; make every row the same length",
+                self.rec.len(),
+                self.header.len()
+            )));
+        }
+        Ok(())
+    }
+
+    /// Cell `j` of the current record as text.
+    fn cell_text(&self, j: usize, line: usize) -> Result<&str> {
+        let cell = self.rec.get(j).unwrap_or(b"");
+        std::str::from_utf8(cell).map_err(|_| {
+            self.error(format!(
+                "line {line}, column '{}': cell '{}' is not UTF-8 text",
+                clip(&self.header[j]),
+                clip(&String::from_utf8_lossy(cell))
+            ))
+        })
+    }
+
+    /// Cell `j` (kept column `c`) of a typed read as a value.
+    fn typed_cell(&self, c: usize, j: usize, line: usize) -> Result<f64> {
+        let Some((kinds, markers)) = &self.typed else {
+            return Err(self.error("internal: not a typed read".into()));
+        };
+        let text = self.cell_text(j, line)?;
+        if is_missing(markers, text) {
+            return Ok(f64::NAN);
+        }
+        let at = |why: String| {
+            self.error(format!(
+                "line {line}, column '{}': {why}",
+                clip(&self.header[j])
+            ))
+        };
+        match &kinds[c] {
+            ColumnKind::Continuous => match number_cell(text) {
+                NumberCell::Value(v) => Ok(v),
+                NumberCell::NonFinite => Err(at(non_finite_message(text))),
+                NumberCell::Text => Err(at(format!(
+                    "cannot read '{}' as a number in a continuous column; fix the cell or mark it missing (empty, NA, or --missing-marker)",
+                    clip(text)
+                ))),
+            },
+            kind @ ColumnKind::Categorical { levels } => match kind.level_of(text) {
+                Some(i) => Ok(i as f64),
+                None => Err(at(format!(
+                    "level '{}' was not seen in training (the levels are: {}); fix the cell or mark it missing",
+                    clip(text),
+                    clip(&levels.join(", "))
+                ))),
+            },
+        }
     }
 
     /// The kept columns' names.
@@ -235,13 +443,15 @@ impl CsvRows {
             if rec.len() == 1 && rec.get(0).is_some_and(<[u8]>::is_empty) {
                 continue; // blank line
             }
-            if rec.len() != self.header.len() {
-                return Err(self.error(format!(
-                    "line {line} has {} fields but the header has {} columns; make every row the same length",
-                    rec.len(),
-                    self.header.len()
-                )));
+            self.check_width(line)?;
+            if self.typed.is_some() {
+                for (c, &j) in self.keep.iter().enumerate() {
+                    values.push(self.typed_cell(c, j, line)?);
+                }
+                got += 1;
+                continue;
             }
+            let rec = &self.rec;
             for &j in &self.keep {
                 let cell = rec.get(j).unwrap_or(b"");
                 match parse_cell(cell) {

@@ -37,17 +37,20 @@ pub struct Evaluation {
     pub rows: usize,
     /// Number of columns `D`.
     pub dims: usize,
+    /// Number of observed cells (`rows × D` when none is missing).
+    pub observed_cells: usize,
     /// Posterior paths per row `K`.
     pub paths: usize,
     /// Mean ELBO per row.
     pub elbo_per_row: f64,
-    /// Mean ELBO per row divided by `D`.
+    /// Total ELBO divided by the number of observed cells (the mean ELBO per row divided by
+    /// `D` when no cell is missing).
     pub elbo_per_dim: f64,
     /// Mean importance-weighted log-likelihood per row, `log (1/K) Σ_k w_k`: a lower bound on
     /// `log p(y)` in expectation that tightens as `K` grows (Burda, Grosse & Salakhutdinov,
     /// *Importance Weighted Autoencoders*, ICLR 2016, Theorem 1).
     pub loglik_per_row: f64,
-    /// Mean importance-weighted log-likelihood per row divided by `D`.
+    /// Total importance-weighted log-likelihood divided by the number of observed cells.
     pub loglik_per_dim: f64,
     /// Standard error (over rows) of `loglik_per_row`.
     pub loglik_se: f64,
@@ -62,20 +65,23 @@ impl std::fmt::Display for Evaluation {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         writeln!(
             f,
-            "rows {}, columns {}, posterior paths per row {}",
-            self.rows, self.dims, self.paths
+            "rows {}, columns {}, observed cells {}, posterior paths per row {}",
+            self.rows, self.dims, self.observed_cells, self.paths
         )?;
         writeln!(
             f,
-            "ELBO                      {:10.4} per row  {:8.4} per dimension",
+            "ELBO                      {:10.4} per row  {:8.4} per observed cell",
             self.elbo_per_row, self.elbo_per_dim
         )?;
         writeln!(
             f,
-            "log-likelihood (IW, K={}) {:10.4} per row  {:8.4} per dimension  (± {:.4} per row)",
+            "log-likelihood (IW, K={}) {:10.4} per row  {:8.4} per observed cell  (± {:.4} per row)",
             self.paths, self.loglik_per_row, self.loglik_per_dim, self.loglik_se
         )?;
-        write!(f, "nats, in the data's own units")
+        write!(
+            f,
+            "nats, in the data's own units (categorical cells: log-probabilities)"
+        )
     }
 }
 
@@ -85,6 +91,7 @@ impl std::fmt::Display for Evaluation {
 #[derive(Debug, Default)]
 pub(crate) struct EvalSums {
     rows: usize,
+    cells: usize,
     elbo_sum: f64,
     loglik_mean: f64,
     loglik_m2: f64,
@@ -92,9 +99,10 @@ pub(crate) struct EvalSums {
 }
 
 impl EvalSums {
-    /// Adds one row's ELBO and importance-weighted log-likelihood.
-    pub(crate) fn add(&mut self, elbo: f64, loglik: f64) {
+    /// Adds one row's ELBO, importance-weighted log-likelihood and observed cells.
+    pub(crate) fn add(&mut self, elbo: f64, loglik: f64, cells: usize) {
         self.rows += 1;
+        self.cells += cells;
         self.elbo_sum += elbo;
         self.loglik_sum += loglik;
         let delta = loglik - self.loglik_mean;
@@ -136,11 +144,12 @@ impl EvalSums {
         Ok(Evaluation {
             rows: self.rows,
             dims,
+            observed_cells: self.cells,
             paths,
             elbo_per_row: elbo,
-            elbo_per_dim: elbo / dims as f64,
+            elbo_per_dim: self.elbo_sum / self.cells.max(1) as f64,
             loglik_per_row: ll,
-            loglik_per_dim: ll / dims as f64,
+            loglik_per_dim: self.loglik_sum / self.cells.max(1) as f64,
             loglik_se: (var / n).sqrt(),
             elbo_rows,
             loglik_rows,

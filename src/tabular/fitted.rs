@@ -9,9 +9,11 @@ use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, Result};
 use crate::nn::params::sorted_vars;
+use crate::tabular::coding::RowCoder;
 use crate::tabular::evaluation::{EvalOptions, EvalSums, Evaluation};
-use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory};
+use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory, RowLayout};
 use crate::tabular::scaler::Standardizer;
+use crate::tabular::schema::Schema;
 use crate::tabular::table::Table;
 use crate::tabular::train::history::{History, Timing};
 use crate::util::rng::{generator, streams};
@@ -25,6 +27,8 @@ pub struct TabularModel {
     pub(crate) scaler: Standardizer,
     pub(crate) columns: Vec<String>,
     pub(crate) history: History,
+    pub(crate) schema: Schema,
+    pub(crate) coder: RowCoder,
 }
 
 impl TabularModel {
@@ -41,6 +45,11 @@ impl TabularModel {
     /// Column names, in order.
     pub fn columns(&self) -> &[String] {
         &self.columns
+    }
+
+    /// Each column's type and the missing-cell markers the model was fitted with.
+    pub fn schema(&self) -> &Schema {
+        &self.schema
     }
 
     /// Training history (empty for a model that was never trained).
@@ -82,11 +91,23 @@ impl TabularModel {
         Ok(Self::read(path.as_ref(), Some(prior))?.0)
     }
 
-    /// The table's columns in the model's order.
-    fn matching(&self, table: &Table) -> Result<Table> {
-        if table.columns() == self.columns.as_slice() {
-            return Ok(table.clone());
+    /// The table's columns in the model's order, checked against the model's column types.
+    pub(crate) fn matching(&self, table: &Table) -> Result<Table> {
+        let t = if table.columns() == self.columns.as_slice() {
+            table.clone()
+        } else {
+            self.select_columns(table)?
+        };
+        if t.kinds() != self.schema.kinds.as_slice() {
+            return Err(Error::Data {
+                path: table.source().to_path_buf(),
+                reason: "the table's column types differ from the model's (a categorical column read as numbers, say); read it with the model's schema (Table::from_csv_schema)".into(),
+            });
         }
+        Ok(t)
+    }
+
+    fn select_columns(&self, table: &Table) -> Result<Table> {
         table.select(&self.columns).map_err(|_| Error::Data {
             path: table.source().to_path_buf(),
             reason: format!(
@@ -111,14 +132,9 @@ impl TabularModel {
         let chunk_rows = self.eval_chunk_rows(paths);
         let mut sums = EvalSums::default();
         let (mut elbo_rows, mut loglik_rows) = (Vec::new(), Vec::new());
-        let mut z = Vec::with_capacity(chunk_rows * d);
         for rows in table.values().chunks(chunk_rows * d) {
-            z.clear();
-            for row in rows.chunks_exact(d) {
-                self.scaler.transform_row_into(row, &mut z);
-            }
-            self.eval_chunk(&z, paths, &mut rng, |e, l| {
-                sums.add(e, l);
+            self.eval_chunk(rows, paths, &mut rng, |e, l, cells| {
+                sums.add(e, l, cells);
                 elbo_rows.push(e);
                 loglik_rows.push(l);
             })?;
@@ -141,22 +157,19 @@ impl TabularModel {
     ) -> Result<Evaluation> {
         let paths = check_paths(options.paths)?;
         let mut reader =
-            crate::tabular::csv_io::CsvRows::open(path.as_ref(), Some(&self.columns), header)?;
+            crate::tabular::csv_io::CsvRows::open(path.as_ref(), Some(&self.columns), header)?
+                .typed(&self.schema);
         let d = self.columns.len();
         let mut rng = generator(options.seed, streams::EVAL);
         let chunk_rows = self.eval_chunk_rows(paths);
         let mut sums = EvalSums::default();
-        let (mut raw, mut z) = (Vec::new(), Vec::new());
+        let mut raw = Vec::new();
         loop {
             raw.clear();
             if reader.next_rows(chunk_rows, &mut raw)? == 0 {
                 break;
             }
-            z.clear();
-            for row in raw.chunks_exact(d) {
-                self.scaler.transform_row_into(row, &mut z);
-            }
-            self.eval_chunk(&z, paths, &mut rng, |e, l| sums.add(e, l))?;
+            self.eval_chunk(&raw, paths, &mut rng, |e, l, cells| sums.add(e, l, cells))?;
         }
         if sums.is_empty() {
             return Err(
@@ -170,23 +183,39 @@ impl TabularModel {
     fn eval_chunk_rows(&self, paths: usize) -> usize {
         self.model
             .config()
-            .chunk_rows(self.columns.len(), paths, (8192 / paths).max(1))
+            .chunk_rows(self.coder.layout(), paths, (8192 / paths).max(1))
             .max(1)
     }
 
-    /// Evaluates standardised rows `z`, calling `each(elbo, loglik)` per row (data units).
+    /// Evaluates table rows `raw` (data units, the model's columns), calling
+    /// `each(elbo, loglik, observed cells)` per row (data units). A row with no observed cell
+    /// is refused.
     fn eval_chunk(
         &self,
-        z: &[f64],
+        raw: &[f64],
         paths: usize,
         rng: &mut crate::util::rng::Generator,
-        mut each: impl FnMut(f64, f64),
+        mut each: impl FnMut(f64, f64, usize),
     ) -> Result<()> {
         let d = self.columns.len();
-        let r = z.len() / d;
-        let jac = self.scaler.log_jacobian();
-        let terms = self.model.posterior_terms(z, paths, rng)?;
-        for i in 0..r {
+        let r = raw.len() / d;
+        let mut z = Vec::with_capacity(r * self.coder.layout().coded_width());
+        let mut rows = Vec::with_capacity(r);
+        for (i, row) in raw.chunks_exact(d).enumerate() {
+            let (cells, jac) = self.coder.encode_into(row, &self.scaler, &mut z);
+            if cells == 0 {
+                return Err(Error::Data {
+                    path: std::path::PathBuf::from("<rows>"),
+                    reason: format!(
+                        "a row ({} of this chunk) has no observed cell, so it has no likelihood; leave such rows out",
+                        i + 1
+                    ),
+                });
+            }
+            rows.push((cells, jac));
+        }
+        let terms = self.model.posterior_terms_coded(&z, paths, rng)?;
+        for (i, &(cells, jac)) in rows.iter().enumerate() {
             let lw = &terms.log_weight[i * paths..(i + 1) * paths];
             let el = &terms.elbo[i * paths..(i + 1) * paths];
             let max = lw.iter().copied().fold(f64::NEG_INFINITY, f64::max);
@@ -194,6 +223,7 @@ impl TabularModel {
             each(
                 el.iter().sum::<f64>() / paths as f64 + jac,
                 lse - (paths as f64).ln() + jac,
+                cells,
             );
         }
         Ok(())
@@ -217,12 +247,11 @@ impl TabularModel {
                 ),
             ));
         }
-        let d = self.columns.len();
-        let mut out = Vec::with_capacity(rows);
+        let mut out = Vec::with_capacity(rows * self.columns.len());
         for y in self.generated_batches(rows, seed) {
-            out.extend(y?.chunks_exact(d).map(<[f64]>::to_vec));
+            out.extend(y?);
         }
-        Table::new(self.columns.clone(), out)
+        self.table_of(out)
     }
 
     /// Generates `rows` new rows like [`TabularModel::generate`] (the same rows for the same
@@ -248,12 +277,22 @@ impl TabularModel {
         let mut kept = Vec::new();
         for y in self.generated_batches(rows, seed) {
             let y = y?;
-            crate::tabular::table::write_csv_rows(&mut file, &y, d)?;
-            let room = Self::KEPT_ROWS - kept.len();
-            kept.extend(y.chunks_exact(d).take(room).map(<[f64]>::to_vec));
+            crate::tabular::table::write_typed_rows(&mut file, &y, &self.schema.kinds)?;
+            let room = (Self::KEPT_ROWS * d).saturating_sub(kept.len());
+            kept.extend(y.iter().take(room));
         }
         file.commit()?;
-        Table::new(self.columns.clone(), kept)
+        self.table_of(kept)
+    }
+
+    /// A table of the model's columns and types from row-major values.
+    pub(crate) fn table_of(&self, values: Vec<f64>) -> Result<Table> {
+        Table::from_typed(
+            self.columns.clone(),
+            values,
+            self.schema.kinds.clone(),
+            std::path::PathBuf::from("<generated>"),
+        )
     }
 
     /// `rows` generated rows in the data's units, row-major, in batches whose noise fits in
@@ -264,7 +303,7 @@ impl TabularModel {
         seed: u64,
     ) -> impl Iterator<Item = Result<Vec<f64>>> + '_ {
         let mut rng = generator(seed, streams::EVAL);
-        let chunk = self.model.config().chunk_rows(self.columns.len(), 1, 4096);
+        let chunk = self.model.config().chunk_rows(self.coder.layout(), 1, 4096);
         let mut left = rows;
         std::iter::from_fn(move || {
             if left == 0 {
@@ -272,11 +311,14 @@ impl TabularModel {
             }
             let n = left.min(chunk);
             left -= n;
-            Some(
-                self.model
-                    .generate(n, &mut rng)
-                    .map(|z| self.scaler.inverse(&z)),
-            )
+            Some(self.model.generate(n, &mut rng).map(|g| {
+                let w = self.coder.layout().columns();
+                let mut out = Vec::with_capacity(g.len());
+                for row in g.chunks_exact(w) {
+                    self.coder.decode_into(row, &self.scaler, &mut out);
+                }
+                out
+            }))
         })
     }
 
@@ -298,6 +340,12 @@ pub(crate) struct ModelHeader {
     /// Every wall-clock time of the file (the rest of the header is deterministic).
     #[serde(default)]
     pub timing: Timing,
+    /// Column types (absent: every column continuous).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub schema: Option<Schema>,
+    /// Whether the control sees which continuous cells are missing.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub mask_input: bool,
 }
 
 impl TabularModel {
@@ -311,6 +359,9 @@ impl TabularModel {
             scaler: self.scaler.clone(),
             history,
             timing,
+            schema: (!self.schema.all_continuous() || !self.schema.missing_markers.is_empty())
+                .then(|| self.schema.clone()),
+            mask_input: self.coder.layout().mask_input,
         }
     }
 
@@ -349,15 +400,28 @@ impl TabularModel {
             }
             _ => {}
         }
+        let schema = header
+            .schema
+            .clone()
+            .unwrap_or_else(|| Schema::continuous(header.data_dim));
+        let coder = RowCoder::new(&schema.kinds, header.mask_input);
+        let layout: &RowLayout = coder.layout();
+        if header.scaler.mean.len() != layout.continuous {
+            return Err(bad(format!(
+                "the header is inconsistent: {} scaler entries for {} continuous columns",
+                header.scaler.mean.len(),
+                layout.continuous
+            )));
+        }
         header
             .model_config
-            .validate_for(header.data_dim)
+            .validate_for(layout)
             .map_err(|e| bad(format!("the stored configuration is invalid ({e})")))?;
         if !header.model_config.custom_prior {
             crate::nn::checkpoint::check_implied_size(
                 path,
                 &bytes,
-                header.model_config.parameter_count(header.data_dim),
+                header.model_config.parameter_count(layout),
                 &["optim.", "best.", "last."],
             )?;
         }
@@ -367,7 +431,7 @@ impl TabularModel {
             header.model_config.precision.dtype(),
         )?;
         // Rebuild the model, then copy every weight in after checking its shape.
-        let model = LatentModel::build(&header.model_config, header.data_dim, 0, factory)
+        let model = LatentModel::build(&header.model_config, layout, 0, factory)
             .map_err(|e| bad(format!("the stored configuration is invalid ({e})")))?;
         crate::nn::checkpoint::load_vars(path, model.varmap(), &file)?;
         let vars = sorted_vars(model.varmap())?;
@@ -391,6 +455,8 @@ impl TabularModel {
             scaler: header.scaler,
             columns: header.columns,
             history,
+            schema,
+            coder,
         };
         Ok((model, file, header.timing))
     }
@@ -399,9 +465,18 @@ impl TabularModel {
 impl ModelHeader {
     /// Checks that the header's parts agree with each other.
     pub(crate) fn check(&self) -> std::result::Result<(), String> {
+        if let Some(s) = &self.schema {
+            s.check(
+                self.data_dim,
+                crate::tabular::schema::ColumnRules::default().max_levels,
+            )?;
+        }
+        let continuous = self.schema.as_ref().map_or(self.data_dim, |s| {
+            s.kinds.iter().filter(|k| !k.is_categorical()).count()
+        });
         if self.columns.len() != self.data_dim
-            || self.scaler.mean.len() != self.data_dim
-            || self.scaler.scale.len() != self.data_dim
+            || self.scaler.mean.len() != continuous
+            || self.scaler.scale.len() != continuous
         {
             return Err(format!(
                 "the header is inconsistent: {} columns, {} scaler entries, data dimension {}",

@@ -18,7 +18,8 @@ pub struct Standardizer {
 }
 
 impl Standardizer {
-    /// Fits means and standard deviations on `table`. Columns of huge values (whose squares
+    /// Fits means and standard deviations of the continuous columns of `table` (their
+    /// observed cells). Columns of huge values (whose squares
     /// overflow) are measured in units of their largest magnitude, so every fitted mean and
     /// scale is finite.
     ///
@@ -35,11 +36,17 @@ impl Standardizer {
     /// # Errors
     /// As [`Standardizer::fit`].
     pub(crate) fn fit_rows(table: &Table, rows: &[usize]) -> Result<Self> {
-        let d = table.n_cols();
-        let mut mean = vec![0.0; d];
-        let mut scale = vec![0.0; d];
-        for j in 0..d {
-            let col: Vec<f64> = rows.iter().map(|&i| table.row(i)[j]).collect();
+        let cont: Vec<usize> = (0..table.n_cols())
+            .filter(|&j| !table.kinds()[j].is_categorical())
+            .collect();
+        let mut mean = vec![0.0; cont.len()];
+        let mut scale = vec![0.0; cont.len()];
+        for (c, &j) in cont.iter().enumerate() {
+            let col: Vec<f64> = rows
+                .iter()
+                .map(|&i| table.row(i)[j])
+                .filter(|v| !v.is_nan())
+                .collect();
             let (mut m, mut s) = mean_sd(&col, 1.0);
             if !(m.is_finite() && s.is_finite()) {
                 let big = col.iter().fold(0.0f64, |a, v| a.max(v.abs()));
@@ -51,6 +58,11 @@ impl Standardizer {
                 path: table.source().to_path_buf(),
                 reason,
             };
+            if col.is_empty() {
+                return Err(refuse(format!(
+                    "column '{name}' has no observed cell in the training rows; leave it out of the selected columns"
+                )));
+            }
             if s == 0.0 {
                 return Err(refuse(format!(
                     "column '{name}' is constant (every value is {m}) and cannot be standardised; leave it out of the selected columns"
@@ -61,8 +73,8 @@ impl Standardizer {
                     "column '{name}' varies by less than 1e-12 relative to its size (mean {m:e}, standard deviation {s:e}) and cannot be standardised; leave it out or subtract a constant first"
                 )));
             }
-            mean[j] = m;
-            scale[j] = s;
+            mean[c] = m;
+            scale[c] = s;
         }
         Ok(Self { mean, scale })
     }
@@ -78,15 +90,6 @@ impl Standardizer {
             .enumerate()
             .map(|(k, v)| (v - self.mean[k % d]) / self.scale[k % d])
             .collect()
-    }
-
-    /// Appends the standardised values of one row to `out`.
-    pub(crate) fn transform_row_into(&self, row: &[f64], out: &mut Vec<f64>) {
-        out.extend(
-            row.iter()
-                .zip(self.mean.iter().zip(&self.scale))
-                .map(|(v, (m, s))| (v - m) / s),
-        );
     }
 
     /// Back to the data's units, row-major.

@@ -20,8 +20,10 @@ pub struct CheckpointSummary {
     pub crate_version: String,
     /// Column names.
     pub columns: Vec<String>,
-    /// Standardisation.
+    /// Standardisation of the continuous columns, in column order.
     pub scaler: Standardizer,
+    /// Column types.
+    pub schema: crate::tabular::schema::Schema,
     /// Model configuration.
     pub model_config: LatentConfig,
     /// Training configuration, when the file holds a training state.
@@ -61,6 +63,9 @@ pub fn inspect_checkpoint(path: impl AsRef<Path>) -> Result<CheckpointSummary> {
         format: FORMAT,
         format_version: crate::nn::checkpoint::FORMAT_VERSION,
         crate_version,
+        schema: model
+            .schema
+            .unwrap_or_else(|| crate::tabular::schema::Schema::continuous(model.data_dim)),
         columns: model.columns,
         scaler: model.scaler,
         model_config: model.model_config,

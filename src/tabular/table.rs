@@ -2,12 +2,16 @@
 
 use std::path::{Path, PathBuf};
 
+use super::schema::ColumnKind;
 use crate::error::{Error, Result};
 
-/// A numeric table with named columns, stored row-major in f64.
+/// A table with named, typed columns, stored row-major in f64.
 ///
-/// Every constructor checks that names are unique and non-empty, rows have one value per
-/// column, and every value is finite.
+/// Every constructor checks that names are unique and non-empty and rows have one value per
+/// column. Tables built from numbers ([`Table::new`], [`Table::from_csv`]) are continuous and
+/// complete: every value is finite. Tables read with column types
+/// ([`Table::from_csv_typed`]) may also hold categorical columns (a cell is the index of its
+/// level, see [`Table::kinds`]) and missing cells (`NaN`).
 ///
 /// # Example
 /// ```
@@ -23,6 +27,8 @@ pub struct Table {
     values: Vec<f64>,
     n_rows: usize,
     source: PathBuf,
+    kinds: Vec<ColumnKind>,
+    missing_markers: Vec<String>,
 }
 
 impl Table {
@@ -55,10 +61,28 @@ impl Table {
         }
         Ok(Self {
             n_rows: values.len() / d,
+            kinds: vec![ColumnKind::Continuous; d],
+            missing_markers: Vec::new(),
             columns,
             values,
             source,
         })
+    }
+
+    /// A table of typed columns from row-major `values` (`NaN` for a missing cell, a level
+    /// index for a categorical cell), already checked against `kinds`.
+    pub(crate) fn from_typed(
+        columns: Vec<String>,
+        values: Vec<f64>,
+        kinds: Vec<ColumnKind>,
+        source: PathBuf,
+    ) -> Result<Self> {
+        let mut t = Self::from_flat(columns, values, source)?;
+        if kinds.len() != t.n_cols() {
+            return Err(Error::shape("column kinds", t.n_cols(), kinds.len()));
+        }
+        t.kinds = kinds;
+        Ok(t)
     }
 
     pub(crate) fn from_parts(
@@ -98,6 +122,8 @@ impl Table {
             values.extend_from_slice(row);
         }
         Ok(Self {
+            kinds: vec![ColumnKind::Continuous; columns.len()],
+            missing_markers: Vec::new(),
             columns,
             values,
             n_rows: rows.len(),
@@ -105,15 +131,65 @@ impl Table {
         })
     }
 
-    /// Writes the table as CSV with a header, atomically (temporary file, then rename).
+    /// Writes the table as CSV with a header, atomically (temporary file, then rename):
+    /// categorical cells as their labels, missing cells empty.
     ///
     /// # Errors
     /// [`Error::Io`] if the file cannot be written.
     pub fn write_csv(&self, path: impl AsRef<Path>) -> Result<()> {
         let mut f = crate::util::fs::AtomicFile::create(path.as_ref())?;
         write_csv_header(&mut f, &self.columns)?;
-        write_csv_rows(&mut f, &self.values, self.columns.len())?;
+        write_typed_rows(&mut f, &self.values, &self.kinds)?;
         f.commit()
+    }
+
+    /// Each column's type, in order.
+    pub fn kinds(&self) -> &[ColumnKind] {
+        &self.kinds
+    }
+
+    /// The extra texts that marked missing cells when the table was read (besides the empty
+    /// cell and `NA`); a model fitted to the table keeps them for the files it reads later.
+    pub fn missing_markers(&self) -> &[String] {
+        &self.missing_markers
+    }
+
+    #[cfg_attr(not(feature = "csv"), allow(dead_code))]
+    pub(crate) fn set_missing_markers(&mut self, markers: Vec<String>) {
+        self.missing_markers = markers;
+    }
+
+    /// Whether every column is continuous and every cell observed.
+    pub fn is_numeric(&self) -> bool {
+        self.kinds.iter().all(|k| !k.is_categorical()) && !self.has_missing()
+    }
+
+    /// A copy with the cells `(row, column)` marked missing (`NaN`): masking cells to test
+    /// imputation, say.
+    ///
+    /// # Errors
+    /// [`Error::Data`] for a cell outside the table.
+    pub fn with_missing(&self, cells: &[(usize, usize)]) -> Result<Table> {
+        let mut t = self.clone();
+        let d = self.n_cols();
+        for &(i, j) in cells {
+            if i >= self.n_rows || j >= d {
+                return Err(Error::Data {
+                    path: self.source.clone(),
+                    reason: format!(
+                        "cell ({i}, {j}) is outside the table ({} rows, {d} columns)",
+                        self.n_rows
+                    ),
+                });
+            }
+            t.values[i * d + j] = f64::NAN;
+        }
+        Ok(t)
+    }
+
+    /// Whether some cell is missing.
+    pub fn has_missing(&self) -> bool {
+        self.values.iter().any(|v| v.is_nan())
     }
 
     /// Column names.
@@ -160,7 +236,7 @@ impl Table {
     /// # Errors
     /// [`Error::Data`] for an out-of-range index or an empty selection.
     pub fn take_rows(&self, indices: &[usize]) -> Result<Table> {
-        let mut rows = Vec::with_capacity(indices.len());
+        let mut values = Vec::with_capacity(indices.len() * self.n_cols());
         for &i in indices {
             if i >= self.n_rows {
                 return Err(Error::Data {
@@ -171,9 +247,14 @@ impl Table {
                     ),
                 });
             }
-            rows.push(self.row(i).to_vec());
+            values.extend_from_slice(self.row(i));
         }
-        Self::from_parts(self.columns.clone(), rows, self.source.clone())
+        Self::from_typed(
+            self.columns.clone(),
+            values,
+            self.kinds.clone(),
+            self.source.clone(),
+        )
     }
 
     /// The named columns, in the given order.
@@ -185,10 +266,12 @@ impl Table {
             path: self.source.clone(),
             reason,
         })?;
-        let rows = (0..self.n_rows)
-            .map(|i| idx.iter().map(|&j| self.row(i)[j]).collect())
-            .collect();
-        Self::from_parts(names.to_vec(), rows, self.source.clone())
+        let mut values = Vec::with_capacity(self.n_rows * idx.len());
+        for i in 0..self.n_rows {
+            values.extend(idx.iter().map(|&j| self.row(i)[j]));
+        }
+        let kinds = idx.iter().map(|&j| self.kinds[j].clone()).collect();
+        Self::from_typed(names.to_vec(), values, kinds, self.source.clone())
     }
 }
 
@@ -277,4 +360,60 @@ pub(crate) fn write_csv_rows(
         out.write_all(b"\n")?;
     }
     Ok(())
+}
+
+/// Writes row-major `values` of columns `kinds` as CSV lines: numbers in their shortest
+/// round-trip form, categorical cells as their labels (quoted where needed), missing cells
+/// empty.
+pub(crate) fn write_typed_rows(
+    out: &mut impl std::io::Write,
+    values: &[f64],
+    kinds: &[ColumnKind],
+) -> Result<()> {
+    if kinds.iter().all(|k| !k.is_categorical()) && !values.iter().any(|v| v.is_nan()) {
+        return write_csv_rows(out, values, kinds.len());
+    }
+    for row in values.chunks_exact(kinds.len().max(1)) {
+        let line = row
+            .iter()
+            .zip(kinds)
+            .map(|(v, k)| quote(&k.cell_text(*v)))
+            .collect::<Vec<_>>()
+            .join(",");
+        writeln!(out, "{line}")?;
+    }
+    Ok(())
+}
+
+/// Writes completed copies of one table (multiple imputation) as one CSV file, atomically,
+/// with a first column `draw` numbering the copies from 1.
+///
+/// # Errors
+/// [`Error::Data`] if the tables' columns differ; [`Error::Io`] if the file cannot be written.
+pub fn write_draws_csv(tables: &[Table], path: impl AsRef<Path>) -> Result<()> {
+    let Some(first) = tables.first() else {
+        return Err(Error::config("draws", 0, "write at least one table"));
+    };
+    if tables.iter().any(|t| t.columns != first.columns) {
+        return Err(Error::Data {
+            path: path.as_ref().to_path_buf(),
+            reason: "the completed tables have different columns".into(),
+        });
+    }
+    let mut f = crate::util::fs::AtomicFile::create(path.as_ref())?;
+    let mut columns = vec!["draw".to_string()];
+    columns.extend(first.columns.iter().cloned());
+    write_csv_header(&mut f, &columns)?;
+    let mut kinds = vec![ColumnKind::Continuous];
+    kinds.extend(first.kinds.iter().cloned());
+    let d = first.n_cols();
+    for (k, t) in tables.iter().enumerate() {
+        let mut values = Vec::with_capacity(t.n_rows * (d + 1));
+        for i in 0..t.n_rows {
+            values.push((k + 1) as f64);
+            values.extend_from_slice(t.row(i));
+        }
+        write_typed_rows(&mut f, &values, &kinds)?;
+    }
+    f.commit()
 }

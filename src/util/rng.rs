@@ -54,6 +54,11 @@ pub fn standard_normals(rng: &mut dyn RngCore, n: usize) -> Vec<f64> {
         .collect()
 }
 
+/// A uniform draw in `[0, 1)` with 53 random bits.
+pub(crate) fn uniform(rng: &mut dyn RngCore) -> f64 {
+    (rng.next_u64() >> 11) as f64 * (1.0 / (1u64 << 53) as f64)
+}
+
 /// Streams used by the library, so that one seed gives independent draws per purpose.
 pub(crate) mod streams {
     /// Initial weights.
@@ -71,4 +76,8 @@ pub(crate) mod streams {
     pub const EVAL_ROWS: u64 = 7;
     /// Validation subset of big tables.
     pub const VALIDATION_SUBSET: u64 = 8;
+    /// Posterior paths of imputation and conditional generation, keyed by (row, path).
+    pub const IMPUTE_PATHS: u64 = 9;
+    /// Resampling and cell draws of imputation, keyed by row.
+    pub const IMPUTE_DRAWS: u64 = 10;
 }

@@ -10,13 +10,17 @@
 
 mod control;
 mod decoder;
+pub(crate) mod init;
+mod layout;
+mod marginal;
 mod observation;
 
 pub use decoder::{Decoder, DecoderConfig, DecoderKind};
+pub use layout::RowLayout;
 
 use std::sync::Arc;
 
-use candle_core::{DType, Device, Tensor};
+use candle_core::{DType, Device, Module, Tensor};
 use candle_nn::VarMap;
 use rand::RngCore;
 use serde::{Deserialize, Serialize};
@@ -129,54 +133,68 @@ impl LatentConfig {
 }
 
 impl LatentConfig {
-    /// The latent dimension for `data_dim` columns.
-    pub(crate) fn latent_for(&self, data_dim: usize) -> usize {
-        self.latent_dim.unwrap_or(data_dim)
+    /// The latent dimension for rows of `layout` (by default one per column).
+    pub(crate) fn latent_for(&self, layout: &RowLayout) -> usize {
+        self.latent_dim.unwrap_or(layout.columns())
     }
 
-    /// Checks that a model of `data_dim` columns is within the crate's limits.
+    /// Checks that a model of rows of `layout` is within the crate's limits.
     ///
     /// # Errors
     /// [`Error::InvalidConfig`] naming the setting that is too large.
-    pub(crate) fn validate_for(&self, data_dim: usize) -> Result<()> {
+    pub(crate) fn validate_for(&self, layout: &RowLayout) -> Result<()> {
         self.validate()?;
+        let data_dim = layout.columns();
         use crate::util::limits::{at_most, MAX_COLUMNS, MAX_LATENT_DIM};
+        at_most(
+            "one-hot values",
+            layout.one_hot_width(),
+            4 * MAX_COLUMNS,
+            "levels in all",
+        )?;
         at_most("columns", data_dim, MAX_COLUMNS, "columns")
             .map_err(|_| Error::config(
                 "columns",
                 data_dim,
                 format!("at most {MAX_COLUMNS} columns are supported (the full-covariance decoder grows with their square); choose columns with --columns"),
             ))?;
+        if layout.continuous == 0 {
+            return Err(Error::config(
+                "columns",
+                data_dim,
+                "every column is categorical, and the model needs at least one continuous column (a table of categorical columns only is not supported yet); declare a numeric column --continuous if it is one",
+            ));
+        }
         at_most(
             "latent_dim",
-            self.latent_for(data_dim),
+            self.latent_for(layout),
             MAX_LATENT_DIM,
             "latent dimensions",
         )?;
         if !self.custom_prior {
-            crate::util::limits::parameters(self.parameter_count(data_dim))?;
+            crate::util::limits::parameters(self.parameter_count(layout))?;
         }
         Ok(())
     }
 
-    /// Number of parameters of the model with the built-in prior for `data_dim` columns
+    /// Number of parameters of the model with the built-in prior for rows of `layout`
     /// (`None` if it overflows).
-    pub(crate) fn parameter_count(&self, data_dim: usize) -> Option<u64> {
-        let d = self.latent_for(data_dim);
-        let dd = data_dim as u64;
+    pub(crate) fn parameter_count(&self, layout: &RowLayout) -> Option<u64> {
+        let d = self.latent_for(layout);
+        let dd = layout.continuous as u64;
         self.prior
             .parameter_count(d, 0)?
-            .checked_add(self.control.parameter_count(d, data_dim)?)?
+            .checked_add(self.control.parameter_count(d, layout.context_width())?)?
             .checked_add(2 * d as u64)?
-            .checked_add(self.decoder.parameter_count(d, data_dim)?)?
+            .checked_add(self.decoder.parameter_count(d, layout.output_width())?)?
             .checked_add(dd.checked_mul(dd)?.checked_add(dd)?)
     }
 
     /// Values a training step on `batch` rows keeps for backpropagation and draws as noise
     /// (about: each network's hidden outputs and their derivatives, the state, the control
     /// and the noise, per step and row; `None` if it overflows).
-    pub(crate) fn step_values(&self, data_dim: usize, batch: usize) -> Option<u64> {
-        let d = self.latent_for(data_dim) as u64;
+    pub(crate) fn step_values(&self, layout: &RowLayout, batch: usize) -> Option<u64> {
+        let d = self.latent_for(layout) as u64;
         let nets = |m: &MlpConfig| (m.width as u64).checked_mul(2 * m.depth as u64);
         let per_row_step = nets(&self.prior)?
             .checked_add(nets(&self.control)?)?
@@ -188,9 +206,9 @@ impl LatentConfig {
 
     /// Rows of `paths` paths each that one inference chunk can hold within
     /// [`crate::limits::MAX_STEP_VALUES`] values of noise (at least 1, at most `max_rows`).
-    pub(crate) fn chunk_rows(&self, data_dim: usize, paths: usize, max_rows: usize) -> usize {
+    pub(crate) fn chunk_rows(&self, layout: &RowLayout, paths: usize, max_rows: usize) -> usize {
         let per_row = (self.solver.n_steps as u64)
-            .saturating_mul(self.latent_for(data_dim) as u64)
+            .saturating_mul(self.latent_for(layout) as u64)
             .saturating_mul(paths.max(1) as u64)
             .max(1);
         let fit = (crate::util::limits::MAX_STEP_VALUES / 4 / per_row).max(1);
@@ -202,7 +220,7 @@ impl LatentConfig {
 struct Nets {
     prior: Arc<dyn Drift>,
     control: control::ScoreControl,
-    nll: observation::FullGaussian,
+    nll: observation::Observation,
     diffusion: Diffusion,
 }
 
@@ -215,14 +233,15 @@ pub struct PathTerms {
     pub elbo: Vec<f64>,
     /// Control cost per path.
     pub control_cost: Vec<f64>,
-    /// Negative log-likelihood per path and observed dimension, row-major `(paths, D)`.
-    pub nll_per_dim: Vec<f64>,
+    /// The decoder's outputs at each path's end `Z_T` (Gaussian means of the continuous
+    /// cells, then each categorical column's logits; see [`RowLayout`]), row-major.
+    pub outputs: Vec<f64>,
 }
 
 /// The latent-diffusion model (see the module docs).
 pub struct LatentModel {
     cfg: LatentConfig,
-    data_dim: usize,
+    layout: Arc<RowLayout>,
     latent_dim: usize,
     varmap: VarMap,
     nets: Nets,
@@ -232,7 +251,7 @@ pub struct LatentModel {
 impl std::fmt::Debug for LatentModel {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         f.debug_struct("LatentModel")
-            .field("data_dim", &self.data_dim)
+            .field("layout", &self.layout)
             .field("latent_dim", &self.latent_dim)
             .field("cfg", &self.cfg)
             .finish()
@@ -248,7 +267,16 @@ impl LatentModel {
     /// # Errors
     /// [`Error::InvalidConfig`] for a bad config or `data_dim == 0`.
     pub fn new(cfg: &LatentConfig, data_dim: usize, seed: u64) -> Result<Self> {
-        Self::build(cfg, data_dim, seed, None)
+        Self::build(cfg, &RowLayout::continuous(data_dim), seed, None)
+    }
+
+    /// A model for coded rows of `layout` (categorical columns, missing cells), with weights
+    /// drawn from `seed`.
+    ///
+    /// # Errors
+    /// As [`LatentModel::new`].
+    pub fn with_layout(cfg: &LatentConfig, layout: &RowLayout, seed: u64) -> Result<Self> {
+        Self::build(cfg, layout, seed, None)
     }
 
     /// A model whose prior drift is built by `prior` (a user architecture) instead of the
@@ -263,21 +291,23 @@ impl LatentModel {
         seed: u64,
         prior: &PriorFactory,
     ) -> Result<Self> {
-        Self::build(cfg, data_dim, seed, Some(prior))
+        Self::build(cfg, &RowLayout::continuous(data_dim), seed, Some(prior))
     }
 
     pub(crate) fn build(
         cfg: &LatentConfig,
-        data_dim: usize,
+        layout: &RowLayout,
         seed: u64,
         factory: Option<&PriorFactory>,
     ) -> Result<Self> {
         let varmap = VarMap::new();
-        if data_dim == 0 {
+        if layout.columns() == 0 {
             return Err(Error::config("data_dim", 0, "rows need at least 1 column"));
         }
-        cfg.validate_for(data_dim)?;
-        let latent_dim = cfg.latent_dim.unwrap_or(data_dim);
+        cfg.validate_for(layout)?;
+        let latent_dim = cfg.latent_for(layout);
+        let data_dim = layout.continuous;
+        let layout = Arc::new(layout.clone());
         let device = Device::Cpu;
         let pb = ParamBuilder::new(&varmap, cfg.precision.dtype(), &device);
         let mut rng = generator(seed, streams::INIT);
@@ -303,25 +333,30 @@ impl LatentModel {
         let decoder = Arc::new(decoder::Decoder::new(
             &cfg.decoder,
             latent_dim,
-            data_dim,
+            layout.output_width(),
             &pb.pp("decoder"),
             &mut rng,
         )?);
-        let nll = observation::FullGaussian::new(decoder.clone(), data_dim, &pb.pp("decoder"))?;
+        let gaussian = observation::FullGaussian::new(
+            decoder.clone(),
+            data_dim,
+            layout.output_width(),
+            &pb.pp("decoder"),
+        )?;
         let control = control::ScoreControl::new(
             &cfg.control,
             latent_dim,
-            data_dim,
-            decoder.clone(),
-            nll.clone(),
+            layout.clone(),
+            gaussian.clone(),
             (cfg.sigma, cfg.solver.t_end, cfg.init_noise_share),
             &pb.pp("control"),
             &mut rng,
         )?;
         let diffusion = Diffusion::constant(cfg.sigma)?;
+        let nll = observation::Observation::new(gaussian, (*layout).clone());
         Ok(Self {
             cfg,
-            data_dim,
+            layout,
             latent_dim,
             varmap,
             nets: Nets {
@@ -339,9 +374,14 @@ impl LatentModel {
         &self.cfg
     }
 
-    /// Observed dimension `D`.
+    /// Columns `D` of the table (continuous and categorical).
     pub fn data_dim(&self) -> usize {
-        self.data_dim
+        self.layout.columns()
+    }
+
+    /// The shape of the rows the model reads.
+    pub fn layout(&self) -> &RowLayout {
+        &self.layout
     }
 
     /// Latent dimension `d`.
@@ -373,41 +413,61 @@ impl LatentModel {
     }
 
     /// Starts the model at the maximum-likelihood Gaussian `N(ȳ, Σ̂)` of `rows`
-    /// (standardised, row-major): with the prior drift at zero, `Z_T ~ N(0, σ²T I)`; the
-    /// decoder `W = √(1 − α) chol(Σ̂) / (σ√T)`, `b = ȳ` and noise covariance `α Σ̂` give the
-    /// marginal `N(ȳ, Σ̂)` exactly (α is [`LatentConfig::init_noise_share`]). The control's
-    /// score gain then makes the initial control optimal (see the control's docs), so the
-    /// initial ELBO is the Gaussian log-likelihood up to discretisation error. With `d < D`
-    /// the first `d` Cholesky columns are used; with `d > D` the extra columns start at zero.
+    /// (standardised, row-major, every cell observed; for a model with categorical columns,
+    /// the first [`RowLayout::output_width`] values of each coded row): with the prior drift at
+    /// zero, `Z_T ~ N(0, σ²T I)`; the decoder `W = √(1 − α) chol(Σ̂) / (σ√T)`, `b = ȳ` and
+    /// noise covariance `α Σ̂` give the marginal `N(ȳ, Σ̂)` exactly (α is
+    /// [`LatentConfig::init_noise_share`]). The control's score gain then makes the initial
+    /// control optimal (see the control's docs), so the initial ELBO is the Gaussian
+    /// log-likelihood up to discretisation error. With `d < D` the first `d` Cholesky columns
+    /// are used; with `d > D` the extra columns start at zero. Categorical logits start at the
+    /// columns' log-frequencies, independent of `Z_T`.
     ///
     /// # Errors
-    /// [`Error::Shape`] if `rows` is not a multiple of `D`; [`Error::NonFinite`] if the
-    /// covariance is singular.
+    /// [`Error::Shape`] if `rows` is not a multiple of the row width; [`Error::NonFinite`]
+    /// if the covariance is singular.
     pub fn init_from_data(&self, rows: &[f64]) -> Result<()> {
-        let dd = self.data_dim;
-        if rows.is_empty() || !rows.len().is_multiple_of(dd) {
+        let w = self.layout.output_width();
+        if rows.is_empty() || !rows.len().is_multiple_of(w) {
             return Err(Error::shape(
                 "standardised rows (multiple of D)",
-                dd,
+                w,
                 rows.len(),
             ));
         }
-        let n = (rows.len() / dd) as f64;
-        let mut mean = vec![0.0; dd];
-        for r in rows.chunks_exact(dd) {
-            for (m, v) in mean.iter_mut().zip(r) {
-                *m += v / n;
-            }
+        self.init_from_coded(&self.with_full_mask(rows))
+    }
+
+    /// Complete rows of `output_width` values with their mask of ones appended.
+    fn with_full_mask(&self, rows: &[f64]) -> Vec<f64> {
+        let w = self.layout.output_width();
+        let dc = self.layout.continuous;
+        let mut out = Vec::with_capacity(rows.len() / w * (w + dc));
+        for r in rows.chunks_exact(w) {
+            out.extend_from_slice(r);
+            out.extend(std::iter::repeat_n(1.0, dc));
         }
+        out
+    }
+
+    /// [`LatentModel::init_from_data`] from whole coded rows (see [`RowLayout`]), which may
+    /// have missing cells: the Gaussian is then fitted by EM.
+    ///
+    /// # Errors
+    /// As [`LatentModel::init_from_data`].
+    pub fn init_from_coded(&self, rows: &[f64]) -> Result<()> {
+        let layout = &*self.layout;
+        let cw = layout.coded_width();
+        if rows.is_empty() || !rows.len().is_multiple_of(cw) {
+            return Err(Error::shape(
+                "coded rows (multiple of the coded width)",
+                cw,
+                rows.len(),
+            ));
+        }
+        let dd = layout.continuous;
+        let (mean, mut cov) = init::gaussian_moments(rows, layout);
         let alpha = self.cfg.init_noise_share;
-        let mut cov = vec![0.0; dd * dd];
-        for r in rows.chunks_exact(dd) {
-            for i in 0..dd {
-                for j in 0..dd {
-                    cov[i * dd + j] += (r[i] - mean[i]) * (r[j] - mean[j]) / n;
-                }
-            }
-        }
         // A tiny ridge keeps nearly collinear columns factorisable.
         for i in 0..dd {
             cov[i * dd + i] += 1e-6;
@@ -418,14 +478,17 @@ impl LatentModel {
         })?;
         let scale = (1.0 - alpha).sqrt() / (self.cfg.sigma * self.cfg.solver.t_end.sqrt());
         let d = self.latent_dim;
-        let mut w = vec![0.0; dd * d];
+        let outs = layout.output_width();
+        let mut w = vec![0.0; outs * d];
         for i in 0..dd {
             for j in 0..d.min(dd) {
                 w[i * d + j] = l[i * dd + j] * scale;
             }
         }
-        self.set_param("decoder.linear.weight", w, &[dd, d])?;
-        self.set_param("decoder.linear.bias", mean, &[dd])?;
+        let mut bias = mean;
+        bias.extend(init::log_frequencies(rows, layout));
+        self.set_param("decoder.linear.weight", w, &[outs, d])?;
+        self.set_param("decoder.linear.bias", bias, &[outs])?;
         // Noise covariance α Σ̂ = (√α L)(√α L)ᵀ, so the precision factor is (√α L)⁻¹.
         let noise_l: Vec<f64> = l.iter().map(|v| v * alpha.sqrt()).collect();
         let p = crate::util::linalg::lower_triangular_inverse(&noise_l, dd).ok_or_else(|| {
@@ -436,7 +499,65 @@ impl LatentModel {
                         .into(),
             }
         })?;
-        self.nets.nll.set_factor(&self.varmap, "decoder", &p, dd)
+        self.nets
+            .nll
+            .gaussian
+            .set_factor(&self.varmap, "decoder", &p, dd)
+    }
+
+    /// Simulates posterior paths for rows `y` (`output_width` values per row when every
+    /// continuous cell is observed, whole coded rows otherwise) and returns them with the row
+    /// tensor the observation density reads.
+    fn posterior_paths(
+        &self,
+        nets: &Nets,
+        y: &Tensor,
+        noise: &BrownianIncrements,
+    ) -> Result<crate::sde::solver::Paths> {
+        let batch = y.dim(0)?;
+        let l = &*self.layout;
+        let x0 = Tensor::zeros((batch, self.latent_dim), self.dtype(), &self.device)?;
+        if y.dim(1)? == l.output_width() {
+            let context = if l.mask_input {
+                let ones = Tensor::ones((batch, l.continuous), self.dtype(), &self.device)?;
+                Tensor::cat(&[y, &ones], 1)?
+            } else {
+                y.clone()
+            };
+            return simulate(
+                &self.sde(nets),
+                &self.cfg.solver,
+                &x0,
+                noise,
+                Some(&context),
+            );
+        }
+        let masked = nets.control.masked(y)?;
+        let sde = Sde::new(&nets.diffusion)
+            .with_prior(nets.prior.as_ref())
+            .with_control(&masked);
+        simulate(&sde, &self.cfg.solver, &x0, noise, Some(y))
+    }
+
+    /// Coded rows (whole, mask included) as the tensor [`LatentModel::posterior_paths`]
+    /// reads: only the first `output_width` values when every continuous cell is observed.
+    pub(crate) fn coded_tensor(&self, rows: &[f64], n: usize) -> Result<Tensor> {
+        let l = &*self.layout;
+        let cw = l.coded_width();
+        let ow = l.output_width();
+        let complete = rows
+            .chunks_exact(cw)
+            .all(|r| r[ow..].iter().all(|&m| m > 0.5));
+        let t = if complete {
+            let mut v = Vec::with_capacity(n * ow);
+            for r in rows.chunks_exact(cw) {
+                v.extend_from_slice(&r[..ow]);
+            }
+            Tensor::from_vec(v, (n, ow), &self.device)?
+        } else {
+            Tensor::from_vec(rows.to_vec(), (n, cw), &self.device)?
+        };
+        Ok(t.to_dtype(self.dtype())?)
     }
 
     fn sde<'a>(&self, nets: &'a Nets) -> Sde<'a> {
@@ -445,9 +566,11 @@ impl LatentModel {
             .with_control(&nets.control)
     }
 
-    /// The free energy of standardised rows `y` `(batch, D)`, one posterior path per row
-    /// with latent noise drawn from `rng` on the model's grid, keeping the autodiff graph
-    /// (run it inside [`crate::run_deep`] for long grids).
+    /// The free energy of standardised rows `y` `(batch, D)` (every cell observed; for a
+    /// model with categorical columns, the first [`RowLayout::output_width`] values of each
+    /// coded row), one posterior path per row with latent noise drawn from `rng` on the
+    /// model's grid, keeping the autodiff graph (run it inside [`crate::run_deep`] for long
+    /// grids).
     ///
     /// # Errors
     /// [`Error::Shape`] for mismatched shapes.
@@ -465,7 +588,8 @@ impl LatentModel {
 
     /// [`LatentModel::free_energy`] with row `i`'s noise from the generator keyed by
     /// `keys[i]` (training: the step and the row's index), so a minibatch split between
-    /// processes draws the noise it would draw whole.
+    /// processes draws the noise it would draw whole. `y` is as
+    /// [`LatentModel::coded_tensor`] makes it.
     pub(crate) fn free_energy_keyed(
         &self,
         y: &Tensor,
@@ -484,42 +608,36 @@ impl LatentModel {
     }
 
     fn free_energy_with(&self, y: &Tensor, noise: &BrownianIncrements) -> Result<FreeEnergy> {
-        let batch = y.dim(0)?;
-        let x0 = Tensor::zeros((batch, self.latent_dim), self.dtype(), &self.device)?;
-        let paths = simulate(&self.sde(&self.nets), &self.cfg.solver, &x0, noise, Some(y))?;
+        let paths = self.posterior_paths(&self.nets, y, noise)?;
         FreeEnergy::new(&paths, &self.nets.nll, Some(y))
     }
 
-    /// Posterior paths for standardised rows `y` without an autodiff graph: importance
-    /// log-weights, single-path ELBO terms and per-dimension NLL.
+    /// Posterior paths for rows `y` without an autodiff graph: importance log-weights,
+    /// single-path ELBO terms and the decoder's outputs at the paths' ends.
     fn path_terms(&self, y: &Tensor, noise: &BrownianIncrements) -> Result<PathTerms> {
         run_deep(|| frozen(|| self.path_terms_frozen(y, noise)))?
     }
 
     fn path_terms_frozen(&self, y: &Tensor, noise: &BrownianIncrements) -> Result<PathTerms> {
         let nets = &self.nets;
-        let batch = y.dim(0)?;
-        let x0 = Tensor::zeros((batch, self.latent_dim), self.dtype(), &self.device)?;
-        let p = simulate(&self.sde(nets), &self.cfg.solver, &x0, noise, Some(y))?;
-        let nll_dim = nets.nll.nll_per_dim(&p.end, y)?;
-        let nll = nll_dim.sum(1)?;
+        let p = self.posterior_paths(nets, y, noise)?;
+        let out = nets.nll.gaussian.decoder.forward(&p.end)?;
+        let nll = nets.nll.cost_from_outputs(&out, y)?;
         let f64v =
             |t: &Tensor| -> Result<Vec<f64>> { Ok(t.to_dtype(DType::F64)?.to_vec1::<f64>()?) };
         Ok(PathTerms {
             log_weight: f64v(&(&p.log_weight - &nll)?)?,
             elbo: f64v(&(&p.control_cost + &nll)?.neg()?)?,
             control_cost: f64v(&p.control_cost)?,
-            nll_per_dim: nll_dim
-                .to_dtype(DType::F64)?
-                .flatten_all()?
-                .to_vec1::<f64>()?,
+            outputs: out.to_dtype(DType::F64)?.flatten_all()?.to_vec1::<f64>()?,
         })
     }
 
-    /// Posterior terms for standardised `rows` (row-major, `D` columns), `paths` posterior
-    /// paths per row with noise from `rng`: each row is repeated `paths` times, consecutively,
-    /// so terms `i·paths .. (i+1)·paths` belong to row `i`. Callers stream long tables through
-    /// this in chunks.
+    /// Posterior terms for standardised `rows` (row-major, `D` columns, every cell observed;
+    /// for a model with categorical columns, the first [`RowLayout::output_width`] values of
+    /// each coded row), `paths` posterior paths per row with noise from `rng`: each row is
+    /// repeated `paths` times, consecutively, so terms `i·paths .. (i+1)·paths` belong to row
+    /// `i`. Callers stream long tables through this in chunks.
     ///
     /// # Errors
     /// [`Error::Shape`] if `rows` is not a multiple of `D`.
@@ -529,7 +647,7 @@ impl LatentModel {
         paths: usize,
         rng: &mut dyn RngCore,
     ) -> Result<PathTerms> {
-        let d = self.data_dim;
+        let d = self.layout.output_width();
         if rows.is_empty() || !rows.len().is_multiple_of(d) {
             return Err(Error::shape(
                 "standardised rows (multiple of D)",
@@ -537,14 +655,36 @@ impl LatentModel {
                 rows.len(),
             ));
         }
-        let r = rows.len() / d;
-        let mut rep = Vec::with_capacity(r * paths * d);
-        for row in rows.chunks_exact(d) {
+        self.posterior_terms_coded(&self.with_full_mask(rows), paths, rng)
+    }
+
+    /// [`LatentModel::posterior_terms`] for whole coded rows (see [`RowLayout`]), which may
+    /// have missing cells: the likelihood terms are then those of the observed cells.
+    ///
+    /// # Errors
+    /// [`Error::Shape`] if `rows` is not a multiple of the coded width.
+    pub fn posterior_terms_coded(
+        &self,
+        rows: &[f64],
+        paths: usize,
+        rng: &mut dyn RngCore,
+    ) -> Result<PathTerms> {
+        let cw = self.layout.coded_width();
+        if rows.is_empty() || !rows.len().is_multiple_of(cw) {
+            return Err(Error::shape(
+                "coded rows (multiple of the coded width)",
+                cw,
+                rows.len(),
+            ));
+        }
+        let r = rows.len() / cw;
+        let mut rep = Vec::with_capacity(r * paths * cw);
+        for row in rows.chunks_exact(cw) {
             for _ in 0..paths {
                 rep.extend_from_slice(row);
             }
         }
-        let y = Tensor::from_vec(rep, (r * paths, d), &self.device)?.to_dtype(self.dtype())?;
+        let y = self.coded_tensor(&rep, r * paths)?;
         let noise = self.cfg.solver.sample_noise(
             rng,
             r * paths,
@@ -555,9 +695,9 @@ impl LatentModel {
         self.path_terms(&y, &noise)
     }
 
-    /// [`LatentModel::posterior_terms`] with path `p` of row `i` drawing from the generator
-    /// keyed by `(row_keys[i], p)`: a row's terms do not depend on the chunk or process that
-    /// evaluates it.
+    /// [`LatentModel::posterior_terms_coded`] with path `p` of row `i` drawing from the
+    /// generator keyed by `(row_keys[i], p)`: a row's terms do not depend on the chunk or
+    /// process that evaluates it.
     pub(crate) fn posterior_terms_keyed(
         &self,
         rows: &[f64],
@@ -565,26 +705,38 @@ impl LatentModel {
         seed: u64,
         row_keys: &[u64],
     ) -> Result<PathTerms> {
-        let d = self.data_dim;
-        if rows.len() != row_keys.len() * d || rows.is_empty() {
+        self.posterior_terms_stream(rows, paths, seed, streams::EVAL_ROWS, row_keys)
+    }
+
+    /// [`LatentModel::posterior_terms_keyed`] on generator stream `stream`.
+    pub(crate) fn posterior_terms_stream(
+        &self,
+        rows: &[f64],
+        paths: usize,
+        seed: u64,
+        stream: u64,
+        row_keys: &[u64],
+    ) -> Result<PathTerms> {
+        let cw = self.layout.coded_width();
+        if rows.len() != row_keys.len() * cw || rows.is_empty() {
             return Err(Error::shape(
-                "standardised rows (one key per row)",
-                row_keys.len() * d,
+                "coded rows (one key per row)",
+                row_keys.len() * cw,
                 rows.len(),
             ));
         }
         let mut rep = Vec::with_capacity(rows.len() * paths);
         let mut keys = Vec::with_capacity(row_keys.len() * paths);
-        for (row, &k) in rows.chunks_exact(d).zip(row_keys) {
+        for (row, &k) in rows.chunks_exact(cw).zip(row_keys) {
             for p in 0..paths {
                 rep.extend_from_slice(row);
                 keys.push(key2(k, p as u64));
             }
         }
-        let y = Tensor::from_vec(rep, (keys.len(), d), &self.device)?.to_dtype(self.dtype())?;
+        let y = self.coded_tensor(&rep, keys.len())?;
         let noise = self.cfg.solver.sample_noise_keyed(
             seed,
-            streams::EVAL_ROWS,
+            stream,
             &keys,
             self.latent_dim,
             self.dtype(),
@@ -593,8 +745,10 @@ impl LatentModel {
         self.path_terms(&y, &noise)
     }
 
-    /// Draws `n` standardised rows from the model: the prior SDE from `Z_0 = 0`, then
-    /// `y = m(Z_T) + s ε`. No autodiff graph is built. Row-major `(n, D)`.
+    /// Draws `n` rows from the model: the prior SDE from `Z_0 = 0`, then the continuous
+    /// cells `y = m(Z_T) + s ε` (standardised) and each categorical cell from its softmax
+    /// (as the index of its level). No autodiff graph is built. Row-major `(n, D)`:
+    /// continuous cells first, then categorical ones (see [`RowLayout`]).
     ///
     /// # Errors
     /// [`Error::Candle`] on tensor errors.
@@ -603,10 +757,25 @@ impl LatentModel {
             self.cfg
                 .solver
                 .sample_noise(rng, n, self.latent_dim, self.dtype(), &self.device)?;
-        let dd = self.data_dim;
+        let dd = self.layout.continuous;
         let eps = Tensor::from_vec(standard_normals(rng, n * dd), (n, dd), &self.device)?
             .to_dtype(self.dtype())?;
-        run_deep(|| frozen(|| self.generate_frozen(n, &noise, &eps)))?
+        let (y, logits) = run_deep(|| frozen(|| self.generate_frozen(n, &noise, &eps)))??;
+        if self.layout.levels.is_empty() {
+            return Ok(y);
+        }
+        let ow = self.layout.output_width();
+        let mut out = Vec::with_capacity(n * self.layout.columns());
+        for i in 0..n {
+            out.extend_from_slice(&y[i * dd..(i + 1) * dd]);
+            let mut at = dd;
+            for &k in &self.layout.levels {
+                let level = draw_level(&logits[i * ow + at..i * ow + at + k], rng);
+                out.push(level as f64);
+                at += k;
+            }
+        }
+        Ok(out)
     }
 
     fn generate_frozen(
@@ -614,17 +783,58 @@ impl LatentModel {
         n: usize,
         noise: &BrownianIncrements,
         eps: &Tensor,
-    ) -> Result<Vec<f64>> {
+    ) -> Result<(Vec<f64>, Vec<f64>)> {
         let nets = &self.nets;
         let sde = Sde::new(&nets.diffusion).with_prior(nets.prior.as_ref());
         let x0 = Tensor::zeros((n, self.latent_dim), self.dtype(), &self.device)?;
         let p = simulate(&sde, &self.cfg.solver, &x0, noise, None)?;
-        let mean = nets.nll.mean(&p.end)?;
-        let dd = self.data_dim;
+        let out = nets.nll.gaussian.decoder.forward(&p.end)?;
+        let mean = if self.layout.levels.is_empty() {
+            out.clone()
+        } else {
+            out.narrow(1, 0, self.layout.continuous)?
+        };
+        let dd = self.layout.continuous;
         // y = m + P⁻¹ ε, i.e. rows e P⁻ᵀ.
-        let factor = Tensor::from_vec(nets.nll.noise_factor()?, (dd, dd), &self.device)?
+        let factor = Tensor::from_vec(nets.nll.gaussian.noise_factor()?, (dd, dd), &self.device)?
             .to_dtype(self.dtype())?;
         let y = (mean + eps.matmul(&factor.t()?)?)?;
-        Ok(y.to_dtype(DType::F64)?.flatten_all()?.to_vec1::<f64>()?)
+        let f = |t: Tensor| -> Result<Vec<f64>> {
+            Ok(t.to_dtype(DType::F64)?.flatten_all()?.to_vec1::<f64>()?)
+        };
+        let logits = if self.layout.levels.is_empty() {
+            Vec::new()
+        } else {
+            f(out)?
+        };
+        Ok((f(y)?, logits))
     }
+
+    /// The noise covariance's factor `P⁻¹` of the continuous cells (f64, row-major), so
+    /// `y − m(z) ~ N(0, P⁻¹P⁻ᵀ)`.
+    pub(crate) fn noise_factor(&self) -> Result<Vec<f64>> {
+        self.nets.nll.gaussian.noise_factor()
+    }
+}
+
+/// A level drawn from the softmax of `logits` with one uniform draw from `rng`.
+pub(crate) fn draw_level(logits: &[f64], rng: &mut dyn RngCore) -> usize {
+    let probs = softmax(logits);
+    let u = crate::util::rng::uniform(rng);
+    let mut acc = 0.0;
+    for (i, p) in probs.iter().enumerate() {
+        acc += p;
+        if u < acc {
+            return i;
+        }
+    }
+    probs.len().saturating_sub(1)
+}
+
+/// `softmax(logits)`, computed stably.
+pub(crate) fn softmax(logits: &[f64]) -> Vec<f64> {
+    let max = logits.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let e: Vec<f64> = logits.iter().map(|l| (l - max).exp()).collect();
+    let s: f64 = e.iter().sum();
+    e.into_iter().map(|v| v / s).collect()
 }

@@ -1,10 +1,13 @@
-//! The latent model's observation density: a Gaussian with full covariance.
+//! The latent model's observation density: a Gaussian with full covariance over the
+//! continuous cells, times one categorical distribution (softmax of the decoder's logits) per
+//! categorical cell; missing cells are marginalised out.
 
 use std::sync::Arc;
 
 use candle_core::{DType, Device, Module, Tensor};
 
 use super::decoder::Decoder;
+use super::layout::RowLayout;
 use crate::error::{Error, Result};
 use crate::nn::params::{Param, ParamBuilder};
 use crate::sde::terminal::TerminalCost;
@@ -18,15 +21,24 @@ use crate::sde::terminal::TerminalCost;
 /// `precision_log_diag` `(D)` under the decoder's prefix.
 #[derive(Clone)]
 pub(crate) struct FullGaussian {
-    decoder: Arc<Decoder>,
+    pub(crate) decoder: Arc<Decoder>,
     lower: Param,
     log_diag: Param,
     mask: Tensor,
     eye: Tensor,
+    /// Continuous cells `D_c` (the decoder's first `D_c` outputs are their means).
+    dim: usize,
+    /// Decoder outputs (means and logits).
+    outputs: usize,
 }
 
 impl FullGaussian {
-    pub(crate) fn new(decoder: Arc<Decoder>, data_dim: usize, pb: &ParamBuilder) -> Result<Self> {
+    pub(crate) fn new(
+        decoder: Arc<Decoder>,
+        data_dim: usize,
+        outputs: usize,
+        pb: &ParamBuilder,
+    ) -> Result<Self> {
         let lower = pb.zeros(&[data_dim, data_dim], "precision_lower")?;
         let log_diag = pb.zeros(&[data_dim], "precision_log_diag")?;
         let mask: Vec<f64> = (0..data_dim * data_dim)
@@ -47,7 +59,68 @@ impl FullGaussian {
             log_diag,
             mask,
             eye,
+            dim: data_dim,
+            outputs,
         })
+    }
+
+    /// The Gaussian part of the decoder's outputs `out` `(n, outputs)`.
+    fn gaussian_part(&self, out: Tensor) -> candle_core::Result<Tensor> {
+        if self.outputs == self.dim {
+            Ok(out)
+        } else {
+            out.narrow(1, 0, self.dim)
+        }
+    }
+
+    /// The linear part of the Gaussian means, `W_c z + b_c`.
+    pub(crate) fn gaussian_linear_mean(&self, z: &Tensor) -> candle_core::Result<Tensor> {
+        self.linear_mean_c(z)
+    }
+
+    fn linear_mean_c(&self, z: &Tensor) -> candle_core::Result<Tensor> {
+        self.gaussian_part(self.decoder.linear_mean(z)?)
+    }
+
+    /// The rows of the decoder's linear weight that give the Gaussian means, `(D_c, d)`.
+    pub(crate) fn linear_weight_c(&self) -> candle_core::Result<Tensor> {
+        let w = self.decoder.linear_weight();
+        if self.outputs == self.dim {
+            Ok(w.clone())
+        } else {
+            w.narrow(0, 0, self.dim)
+        }
+    }
+
+    /// The bias of the Gaussian means.
+    pub(crate) fn linear_bias_c(&self) -> candle_core::Result<Tensor> {
+        let b = self.decoder.linear_bias();
+        if self.outputs == self.dim {
+            Ok(b.clone())
+        } else {
+            b.narrow(0, 0, self.dim)
+        }
+    }
+
+    /// `−log p(y_o | z)` per row over the observed continuous cells `observed` (row-major,
+    /// `true` observed), `(batch)`, for Gaussian means `mean`.
+    pub(crate) fn masked_nll(
+        &self,
+        mean: &Tensor,
+        y: &Tensor,
+        observed: Vec<bool>,
+    ) -> candle_core::Result<Tensor> {
+        super::marginal::masked_gaussian_nll(&self.factor()?, &(y - mean)?, observed)
+    }
+
+    /// `−log p(y_j | y_<j, z)` per row and cell for Gaussian means `mean`, `(batch, D_c)`.
+    fn nll_per_dim_at(&self, mean: &Tensor, y: &Tensor) -> candle_core::Result<Tensor> {
+        let p = self.factor()?;
+        let e = (y - mean)?.matmul(&p.t()?)?;
+        let half_log_2pi = 0.5 * (2.0 * std::f64::consts::PI).ln();
+        e.sqr()?
+            .affine(0.5, half_log_2pi)?
+            .broadcast_sub(&self.log_diag.unsqueeze(0)?)
     }
 
     /// The precision factor `P`.
@@ -58,27 +131,16 @@ impl FullGaussian {
         (self.lower.tensor() * &self.mask)? + diag
     }
 
-    pub(crate) fn mean(&self, z: &Tensor) -> candle_core::Result<Tensor> {
-        self.decoder.forward(z)
-    }
-
-    /// `−log p(y_j | y_<j, z)` per path and dimension, `(batch, D)`.
-    pub(crate) fn nll_per_dim(&self, z: &Tensor, y: &Tensor) -> candle_core::Result<Tensor> {
-        let p = self.factor()?;
-        let e = (y - self.mean(z)?)?.matmul(&p.t()?)?;
-        let half_log_2pi = 0.5 * (2.0 * std::f64::consts::PI).ln();
-        e.sqr()?
-            .affine(0.5, half_log_2pi)?
-            .broadcast_sub(&self.log_diag.unsqueeze(0)?)
-    }
-
     /// `PᵀP (y − m(z))` for the linear mean part, `(batch, D)`: with `Wᵀ` on the right it is
     /// the score `∇_z log p(y | z)` of the linear decoder.
     pub(crate) fn whitened_back(&self, z: &Tensor, y: &Tensor) -> candle_core::Result<Tensor> {
+        self.whiten_residual(&(y - self.linear_mean_c(z)?)?)
+    }
+
+    /// `PᵀP r` for residuals `r` `(batch, D_c)`.
+    pub(crate) fn whiten_residual(&self, r: &Tensor) -> candle_core::Result<Tensor> {
         let p = self.factor()?;
-        (y - self.decoder.linear_mean(z)?)?
-            .matmul(&p.t()?)?
-            .matmul(&p)
+        r.matmul(&p.t()?)?.matmul(&p)
     }
 
     /// The noise factor `P⁻¹` as f64 row-major (for sampling).
@@ -121,11 +183,76 @@ impl FullGaussian {
     }
 }
 
-impl TerminalCost for FullGaussian {
+/// The whole observation density of a coded row (see [`RowLayout`]): the terminal cost
+/// `−log p(y_obs | z)`.
+///
+/// It reads either a row's first [`RowLayout::output_width`] values (every continuous cell
+/// observed) or the whole coded row with its mask (some missing: the Gaussian term is then the
+/// marginal of the observed cells).
+#[derive(Clone)]
+pub(crate) struct Observation {
+    pub(crate) gaussian: FullGaussian,
+    layout: RowLayout,
+}
+
+impl Observation {
+    pub(crate) fn new(gaussian: FullGaussian, layout: RowLayout) -> Self {
+        Self { gaussian, layout }
+    }
+
+    /// `−log p(y_obs | z)` per row from the decoder's outputs `out` at `z`.
+    pub(crate) fn cost_from_outputs(
+        &self,
+        out: &Tensor,
+        y: &Tensor,
+    ) -> candle_core::Result<Tensor> {
+        let l = &self.layout;
+        let dc = l.continuous;
+        let width = y.dim(1)?;
+        let mean = self.gaussian.gaussian_part(out.clone())?;
+        let y_c = if width == dc {
+            y.clone()
+        } else {
+            y.narrow(1, 0, dc)?
+        };
+        let mut cost = if width == l.coded_width() && width != l.output_width() {
+            let mask = y
+                .narrow(1, l.output_width(), dc)?
+                .to_dtype(candle_core::DType::F64)?
+                .flatten_all()?
+                .to_vec1::<f64>()?;
+            let observed: Vec<bool> = mask.iter().map(|&m| m > 0.5).collect();
+            if observed.iter().all(|&o| o) {
+                self.gaussian.nll_per_dim_at(&mean, &y_c)?.sum(1)?
+            } else {
+                self.gaussian.masked_nll(&mean, &y_c, observed)?
+            }
+        } else if width == l.output_width() {
+            self.gaussian.nll_per_dim_at(&mean, &y_c)?.sum(1)?
+        } else {
+            return Err(candle_core::Error::Msg(format!(
+                "observation rows have {width} values; expected {} or {}",
+                l.output_width(),
+                l.coded_width()
+            )));
+        };
+        let mut at = 0;
+        for &k in &l.levels {
+            let logits = out.narrow(1, dc + at, k)?;
+            let hot = y.narrow(1, dc + at, k)?;
+            let logp = candle_nn::ops::log_softmax(&logits, 1)?;
+            cost = (cost - (logp * hot)?.sum(1)?)?;
+            at += k;
+        }
+        Ok(cost)
+    }
+}
+
+impl TerminalCost for Observation {
     fn cost(&self, z: &Tensor, observation: Option<&Tensor>) -> candle_core::Result<Tensor> {
         let y = observation.ok_or_else(|| {
             candle_core::Error::Msg("the observation density needs the observed row".into())
         })?;
-        self.nll_per_dim(z, y)?.sum(1)
+        self.cost_from_outputs(&self.gaussian.decoder.forward(z)?, y)
     }
 }

@@ -26,9 +26,11 @@ use crate::nn::params::sorted_vars;
 use crate::nn::recovery::{restore, snapshot, GoodPoint, RecoveryState, Snapshot};
 use crate::nn::termination::Termination;
 use crate::sde::objective::FreeEnergyValues;
+use crate::tabular::coding::RowCoder;
 use crate::tabular::fitted::TabularModel;
-use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory};
+use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory, RowLayout};
 use crate::tabular::scaler::Standardizer;
+use crate::tabular::schema::Schema;
 use crate::tabular::split::split_rows;
 use crate::tabular::table::Table;
 use crate::util::rng::{generator, key2, streams};
@@ -99,9 +101,9 @@ impl Sums {
 }
 
 /// Refuses settings whose training step would not fit in memory.
-fn check_step_size(model_cfg: &LatentConfig, data_dim: usize, batch: usize) -> Result<()> {
+fn check_step_size(model_cfg: &LatentConfig, layout: &RowLayout, batch: usize) -> Result<()> {
     let max = crate::util::limits::MAX_STEP_VALUES;
-    match model_cfg.step_values(data_dim, batch) {
+    match model_cfg.step_values(layout, batch) {
         Some(v) if v <= max => Ok(()),
         v => Err(Error::config(
             "batch_size",
@@ -127,22 +129,37 @@ fn no_epoch() -> Error {
 }
 
 /// Training rows and the validation rows used for early stopping (a seeded subset of at
-/// most `max_validation_rows` of the held-out rows), standardised by `scaler`.
+/// most `max_validation_rows` of the held-out rows), coded by `coder` and `scaler`. Rows with
+/// no observed cell are left out.
 fn stored_split(
     table: &Table,
+    coder: &RowCoder,
     scaler: &Standardizer,
     cfg: &TrainConfig,
     dtype: candle_core::DType,
 ) -> Result<(StoredRows, StoredRows)> {
     let (train_idx, val_idx) = split_rows(table.n_rows(), cfg.validation_fraction, cfg.seed)?;
-    let train = StoredRows::new(table, scaler, &train_idx, dtype);
+    let seen = |idx: Vec<usize>| -> Vec<usize> {
+        idx.into_iter()
+            .filter(|&i| table.row(i).iter().any(|v| !v.is_nan()))
+            .collect()
+    };
+    let train = StoredRows::new(table, coder, scaler, &seen(train_idx), dtype);
     let val = StoredRows::new(
         table,
+        coder,
         scaler,
-        &validation_subset(val_idx, cfg.max_validation_rows, cfg.seed),
+        &validation_subset(seen(val_idx), cfg.max_validation_rows, cfg.seed),
         dtype,
     );
     Ok((train, val))
+}
+
+/// Rows of `table` with no observed cell.
+fn empty_rows(table: &Table) -> usize {
+    (0..table.n_rows())
+        .filter(|&i| table.row(i).iter().all(|v| v.is_nan()))
+        .count()
 }
 
 /// At most `max` of the validation rows `idx`, chosen by a seeded shuffle, in table order.
@@ -210,6 +227,12 @@ fn fingerprint(table: &Table) -> u64 {
     let mut h = crate::util::hash::Fnv1a::new();
     h.eat(&(table.n_rows() as u64).to_le_bytes());
     h.eat(&(table.n_cols() as u64).to_le_bytes());
+    for levels in table.kinds().iter().filter_map(|k| k.levels()) {
+        for l in levels {
+            h.eat(l.as_bytes());
+            h.eat(&[0]);
+        }
+    }
     for v in table.values() {
         h.eat(&v.to_bits().to_le_bytes());
     }
@@ -248,14 +271,22 @@ impl Trainer {
         prior: Option<&PriorFactory>,
     ) -> Result<Self> {
         train_cfg.validate()?;
-        model_cfg.validate_for(table.n_cols())?;
-        check_step_size(&model_cfg, table.n_cols(), train_cfg.batch_size)?;
+        let mask_input = (0..table.n_rows()).any(|i| {
+            table
+                .row(i)
+                .iter()
+                .zip(table.kinds())
+                .any(|(v, k)| v.is_nan() && !k.is_categorical())
+        });
+        let coder = RowCoder::new(table.kinds(), mask_input);
+        model_cfg.validate_for(coder.layout())?;
+        check_step_size(&model_cfg, coder.layout(), train_cfg.batch_size)?;
         let (train_idx, val_idx) = split_rows(
             table.n_rows(),
             train_cfg.validation_fraction,
             train_cfg.seed,
         )?;
-        let d = table.n_cols();
+        let d = coder.layout().continuous;
         if train_idx.len() <= d {
             return Err(Error::Data {
                 path: table.source().to_path_buf(),
@@ -288,11 +319,18 @@ impl Trainer {
                 ),
             });
         }
+        let empty = empty_rows(table);
+        if empty > 0 {
+            warnings.push(format!(
+                "{empty} rows have no observed cell and are left out of training and validation"
+            ));
+        }
         let scaler = Standardizer::fit_rows(table, &train_idx)?;
-        let model = LatentModel::build(&model_cfg, table.n_cols(), train_cfg.seed, prior)?;
-        let (train_rows, val_rows) = stored_split(table, &scaler, &train_cfg, model.dtype())?;
+        let model = LatentModel::build(&model_cfg, coder.layout(), train_cfg.seed, prior)?;
+        let (train_rows, val_rows) =
+            stored_split(table, &coder, &scaler, &train_cfg, model.dtype())?;
         drop((train_idx, val_idx));
-        model.init_from_data(&train_rows.slice_f64(0..train_rows.len()).0)?;
+        model.init_from_coded(&train_rows.slice_f64(0..train_rows.len()).0)?;
         let optimizer = AdamW::new(model.varmap(), train_cfg.optimizer.adamw.clone())?;
         let best = snapshot(model.varmap())?;
         let state = TrainState {
@@ -315,6 +353,11 @@ impl Trainer {
                 scaler,
                 columns: table.columns().to_vec(),
                 history: History::default(),
+                schema: Schema {
+                    kinds: table.kinds().to_vec(),
+                    missing_markers: table.missing_markers().to_vec(),
+                },
+                coder,
             },
             train_cfg,
             train_rows,
@@ -390,7 +433,7 @@ impl Trainer {
         train_cfg.validate().map_err(|e| invalid(e.to_string()))?;
         check_step_size(
             model.model.config(),
-            model.columns.len(),
+            model.coder.layout(),
             train_cfg.batch_size,
         )
         .map_err(|e| invalid(e.to_string()))?;
@@ -478,8 +521,22 @@ impl Trainer {
                 ),
             });
         }
-        let (train_rows, val_rows) =
-            stored_split(table, &model.scaler, &train_cfg, model.model.dtype())?;
+        if table.kinds() != model.schema.kinds.as_slice() {
+            return Err(Error::Data {
+                path: table.source().to_path_buf(),
+                reason: format!(
+                    "the table's column types differ from those the checkpoint {} was trained with; read it with the checkpoint's schema",
+                    path.display()
+                ),
+            });
+        }
+        let (train_rows, val_rows) = stored_split(
+            table,
+            &model.coder,
+            &model.scaler,
+            &train_cfg,
+            model.model.dtype(),
+        )?;
         let mut optimizer = AdamW::new(model.model.varmap(), train_cfg.optimizer.adamw.clone())?;
         optimizer.load_state(&moments, optimizer_steps)?;
         Ok(Self {
@@ -634,7 +691,7 @@ impl Trainer {
     /// fixed noise keyed by each row (the same every epoch, whichever process evaluates the
     /// row). The rows are shared out over the group and the sums reduced.
     fn elbo_of(&self, rows: &StoredRows, positions: &[usize]) -> Result<f64> {
-        let d = self.model.columns.len();
+        let d = self.model.coder.layout().coded_width();
         let k = self.train_cfg.validation_paths;
         let n = if positions.is_empty() {
             rows.len()
@@ -646,7 +703,7 @@ impl Trainer {
             .model
             .model
             .config()
-            .chunk_rows(d, k, (4096 / k).max(1))
+            .chunk_rows(self.model.coder.layout(), k, (4096 / k).max(1))
             .max(1);
         let mut sums = [0.0, 0.0];
         let mut at = mine.start;
