@@ -110,6 +110,7 @@ pub use sde::noise::BrownianIncrements;
 pub use sde::objective::{FreeEnergy, FreeEnergyValues};
 pub use sde::solver::{simulate, Kernel, Paths, Scheme, Sde, SolverConfig};
 pub use sde::terminal::{BernoulliNll, GaussianNll, TerminalCost};
+pub use tabular::compare::{compare_samples, ColumnComparison, CompareOptions, SampleComparison};
 #[cfg(feature = "csv")]
 pub use tabular::csv_io::HeaderLine;
 pub use tabular::demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};

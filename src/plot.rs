@@ -120,16 +120,96 @@ pub fn curves_svg(
 fn histogram(values: &[f64], lo: f64, hi: f64, bins: usize) -> Vec<f64> {
     let mut h = vec![0.0; bins];
     let w = (hi - lo) / bins as f64;
-    for &v in values {
+    let mut n = 0.0;
+    // Missing cells (NaN) are left out.
+    for &v in values.iter().filter(|v| !v.is_nan()) {
         let i = (((v - lo) / w).floor() as isize).clamp(0, bins as isize - 1) as usize;
         h[i] += 1.0;
+        n += 1.0;
     }
-    let n = values.len().max(1) as f64;
+    let n = f64::max(n, 1.0);
     h.iter().map(|c| c / (n * w)).collect()
 }
 
-/// Marginal histograms (diagonal) and pairwise scatter plots (off-diagonal) of up to the
-/// first `max_columns` columns: generated rows in blue, `data` (if given) in grey.
+/// Level frequencies of a categorical column with `levels` levels (missing cells left out).
+fn frequencies(values: &[f64], levels: usize) -> Vec<f64> {
+    let mut f = vec![0.0; levels];
+    let seen: Vec<usize> = values
+        .iter()
+        .filter(|v| !v.is_nan())
+        .map(|&v| v as usize)
+        .collect();
+    for &l in &seen {
+        if let Some(c) = f.get_mut(l) {
+            *c += 1.0 / seen.len() as f64;
+        }
+    }
+    f
+}
+
+/// A categorical column's level frequencies as bars: generated rows (blue) beside the data
+/// (grey).
+fn bar_chart(
+    area: &DrawingArea<SVGBackend<'_>, plotters::coord::Shift>,
+    name: &str,
+    levels: &[String],
+    generated: &[f64],
+    data: Option<&[f64]>,
+) -> Result<()> {
+    let k = levels.len();
+    let fs = frequencies(generated, k);
+    let fd = data.map(|d| frequencies(d, k)).unwrap_or_default();
+    let top = fs.iter().chain(&fd).copied().fold(0.0, f64::max) * 1.1 + 1e-12;
+    let mut chart = ChartBuilder::on(area)
+        .margin(6)
+        .caption(name, ("sans-serif", 13))
+        .x_label_area_size(18)
+        .y_label_area_size(10)
+        .build_cartesian_2d(-0.5..k as f64 - 0.5, 0.0..top)
+        .map_err(plot_err)?;
+    let labels: Vec<String> = levels
+        .iter()
+        .map(|l| l.chars().take(12).collect())
+        .collect();
+    chart
+        .configure_mesh()
+        .disable_mesh()
+        .y_labels(0)
+        .x_labels(k.min(12))
+        .x_label_formatter(&|x| {
+            let i = x.round();
+            if (x - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < labels.len() {
+                labels[i as usize].clone()
+            } else {
+                String::new()
+            }
+        })
+        .draw()
+        .map_err(plot_err)?;
+    if !fd.is_empty() {
+        chart
+            .draw_series(fd.iter().enumerate().map(|(l, &v)| {
+                Rectangle::new(
+                    [(l as f64 - 0.4, 0.0), (l as f64, v)],
+                    BLACK.mix(0.4).filled(),
+                )
+            }))
+            .map_err(plot_err)?;
+    }
+    chart
+        .draw_series(fs.iter().enumerate().map(|(l, &v)| {
+            Rectangle::new(
+                [(l as f64, 0.0), (l as f64 + 0.4, v)],
+                BLUE.mix(0.7).filled(),
+            )
+        }))
+        .map_err(plot_err)?;
+    Ok(())
+}
+
+/// Marginal histograms (diagonal; bar charts of level frequencies for categorical columns)
+/// and pairwise scatter plots (off-diagonal; categorical cells at their level's index) of up
+/// to the first `max_columns` columns: generated rows in blue, `data` (if given) in grey.
 ///
 /// # Errors
 /// [`Error::Io`] if the file cannot be written.
@@ -139,7 +219,14 @@ pub fn pairs_svg(
     max_columns: usize,
     path: impl AsRef<Path>,
 ) -> Result<()> {
-    let k = samples.n_cols().min(max_columns).max(1);
+    // The first columns, then up to two categorical columns from further on.
+    let mut chosen: Vec<usize> = (0..samples.n_cols().min(max_columns.max(1))).collect();
+    chosen.extend(
+        (chosen.len()..samples.n_cols())
+            .filter(|&j| samples.kinds()[j].is_categorical())
+            .take(2),
+    );
+    let k = chosen.len();
     let cell = 220u32;
     let mut svg = String::new();
     {
@@ -155,8 +242,9 @@ pub fn pairs_svg(
             ))
             .map_err(plot_err)?;
         let cells = body.split_evenly((k, k));
-        let cols: Vec<Vec<f64>> = (0..k).map(|j| samples.column(j)).collect();
-        let dcols: Option<Vec<Vec<f64>>> = data.map(|d| (0..k).map(|j| d.column(j)).collect());
+        let cols: Vec<Vec<f64>> = chosen.iter().map(|&j| samples.column(j)).collect();
+        let dcols: Option<Vec<Vec<f64>>> =
+            data.map(|d| chosen.iter().map(|&j| d.column(j)).collect());
         let ranges: Vec<(f64, f64)> = (0..k)
             .map(|j| {
                 let extra = dcols.as_ref().map(|c| c[j].clone()).unwrap_or_default();
@@ -168,7 +256,11 @@ pub fn pairs_svg(
         for (idx, area) in cells.iter().enumerate() {
             let (i, j) = (idx / k, idx % k);
             let (x0, x1) = ranges[j];
-            if i == j {
+            if i == j && samples.kinds()[chosen[j]].is_categorical() {
+                let levels = samples.kinds()[chosen[j]].levels().unwrap_or(&[]);
+                let d = dcols.as_ref().map(|c| c[j].as_slice());
+                bar_chart(area, &samples.columns()[chosen[j]], levels, &cols[j], d)?;
+            } else if i == j {
                 let bins = 30;
                 let hs = histogram(&cols[j], x0, x1, bins);
                 let hd = dcols
@@ -178,7 +270,7 @@ pub fn pairs_svg(
                 let top = hs.iter().chain(&hd).copied().fold(0.0, f64::max) * 1.1 + 1e-12;
                 let mut chart = ChartBuilder::on(area)
                     .margin(6)
-                    .caption(&samples.columns()[j], ("sans-serif", 13))
+                    .caption(&samples.columns()[chosen[j]], ("sans-serif", 13))
                     .x_label_area_size(18)
                     .y_label_area_size(10)
                     .build_cartesian_2d(x0..x1, 0.0..top)

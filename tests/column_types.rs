@@ -264,6 +264,37 @@ fn impute_fills_only_missing_cells_and_numbers_its_draws() {
             }
         }
     }
+    // Generated rows against the data: every statistic, named, in the JSON output.
+    let o = ok(run(bin()
+        .arg("evaluate")
+        .arg(&model)
+        .arg("--against")
+        .arg(&train)
+        .arg("--json")));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let c = &v["against"];
+    assert_eq!(c["columns"].as_array().unwrap().len(), 4);
+    assert_eq!(c["columns"][1]["statistic"], "tv");
+    assert_eq!(c["columns"][0]["statistic"], "ks");
+    let p = c["energy_p_value"].as_f64().unwrap();
+    assert!(p > 0.0 && p <= 1.0);
+    assert!(c["max_correlation_difference"].as_f64().unwrap() >= 0.0);
+    // Categorical columns are drawn as bar charts of level frequencies, labelled.
+    let svg = d.join("s.svg");
+    ok(run(bin()
+        .arg("sample")
+        .arg(&model)
+        .args(["--rows", "50", "--out"])
+        .arg(d.join("s.csv"))
+        .arg("--plot")
+        .arg(&svg)
+        .arg("--data")
+        .arg(&train)));
+    let text = std::fs::read_to_string(&svg).unwrap();
+    assert!(
+        text.lines().any(|l| l.trim() == "green") && text.contains("<rect"),
+        "no labelled bars"
+    );
     // The filled table reads back with the model's types.
     let single = d.join("one.csv");
     ok(run(bin()

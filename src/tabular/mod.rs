@@ -4,6 +4,7 @@
 //! missing cells, and imputation.
 
 pub(crate) mod coding;
+pub(crate) mod compare;
 #[cfg(feature = "csv")]
 pub(crate) mod csv_io;
 pub(crate) mod demo;
