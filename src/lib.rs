@@ -56,6 +56,10 @@
 //! [`Trainer`] fits the latent-diffusion model of [`LatentModel`] to a [`Table`];
 //! [`TabularModel`] evaluates (ELBO and importance-weighted log-likelihood in the data's
 //! units), generates rows and is saved as one safetensors file. See the [`Trainer`] example.
+//! Tables may have categorical columns and missing cells ([`Table::from_csv_typed`],
+//! [`ColumnRules`], [`RowLayout`]); [`TabularModel::impute`] fills missing cells and
+//! [`TabularModel::generate_given`] draws rows under conditions; [`compare_samples`] measures
+//! generated rows against data.
 //!
 //! ## Speed: the fused kernel
 //!

@@ -153,3 +153,40 @@ fn a_fit_stopped_by_its_time_budget_continues_when_resumed() {
     assert_eq!(s.history.epochs.len(), 5);
     assert!(s.state.unwrap().step > 0);
 }
+
+#[test]
+fn a_table_with_categories_and_missing_cells_resumes_exactly() {
+    let d = dir("exact-mixed");
+    let data = d.join("mixed.csv");
+    let body: String = (0..150)
+        .map(|i| {
+            let x = (i as f64 * 0.37).sin();
+            let y = if i % 9 == 4 { "?".to_string() } else { format!("{}", x * x + 0.01 * i as f64) };
+            let g = ["north", "south", "east"][i % 3];
+            let g = if i % 13 == 6 { "" } else { g };
+            format!("{x},{y},{g},{}\n", i % 4)
+        })
+        .collect();
+    std::fs::write(&data, format!("a,b,region,grade\n{body}")).unwrap();
+    let opts = ["--missing-marker", "?", "--continuous", "grade"];
+    let full = d.join("full.safetensors");
+    fit(&data, &full, &[&["--epochs", "3"][..], &opts].concat());
+    let half = d.join("half.safetensors");
+    fit(&data, &half, &[&["--epochs", "3", "--stop-after", "1"][..], &opts].concat());
+    // Resuming reads the table with the checkpoint's column types and markers.
+    let resumed = d.join("resumed.safetensors");
+    ok(bin()
+        .arg("fit")
+        .arg(&data)
+        .arg("--resume")
+        .arg(&half)
+        .arg("--out")
+        .arg(&resumed)
+        .output()
+        .unwrap());
+    assert_eq!(contents(&resumed), contents(&full));
+    let info = neural_sde::inspect_checkpoint(&full).unwrap();
+    assert!(info.schema.kinds[2].is_categorical());
+    assert!(!info.schema.kinds[3].is_categorical());
+    assert_eq!(info.schema.missing_markers, vec!["?".to_string()]);
+}
