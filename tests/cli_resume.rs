@@ -161,7 +161,11 @@ fn a_table_with_categories_and_missing_cells_resumes_exactly() {
     let body: String = (0..150)
         .map(|i| {
             let x = (i as f64 * 0.37).sin();
-            let y = if i % 9 == 4 { "?".to_string() } else { format!("{}", x * x + 0.01 * i as f64) };
+            let y = if i % 9 == 4 {
+                "?".to_string()
+            } else {
+                format!("{}", x * x + 0.01 * i as f64)
+            };
             let g = ["north", "south", "east"][i % 3];
             let g = if i % 13 == 6 { "" } else { g };
             format!("{x},{y},{g},{}\n", i % 4)
@@ -172,7 +176,11 @@ fn a_table_with_categories_and_missing_cells_resumes_exactly() {
     let full = d.join("full.safetensors");
     fit(&data, &full, &[&["--epochs", "3"][..], &opts].concat());
     let half = d.join("half.safetensors");
-    fit(&data, &half, &[&["--epochs", "3", "--stop-after", "1"][..], &opts].concat());
+    fit(
+        &data,
+        &half,
+        &[&["--epochs", "3", "--stop-after", "1"][..], &opts].concat(),
+    );
     // Resuming reads the table with the checkpoint's column types and markers.
     let resumed = d.join("resumed.safetensors");
     ok(bin()

@@ -132,8 +132,9 @@ impl TabularModel {
         let chunk_rows = self.eval_chunk_rows(paths);
         let mut sums = EvalSums::default();
         let (mut elbo_rows, mut loglik_rows) = (Vec::new(), Vec::new());
-        for rows in table.values().chunks(chunk_rows * d) {
-            self.eval_chunk(rows, paths, &mut rng, |e, l, cells| {
+        for (c, rows) in table.values().chunks(chunk_rows * d).enumerate() {
+            let at = (table.source(), c * chunk_rows);
+            self.eval_chunk(rows, at, paths, &mut rng, |e, l, cells| {
                 sums.add(e, l, cells);
                 elbo_rows.push(e);
                 loglik_rows.push(l);
@@ -164,12 +165,18 @@ impl TabularModel {
         let chunk_rows = self.eval_chunk_rows(paths);
         let mut sums = EvalSums::default();
         let mut raw = Vec::new();
+        let mut done = 0;
         loop {
             raw.clear();
-            if reader.next_rows(chunk_rows, &mut raw)? == 0 {
+            let got = reader.next_rows(chunk_rows, &mut raw)?;
+            if got == 0 {
                 break;
             }
-            self.eval_chunk(&raw, paths, &mut rng, |e, l, cells| sums.add(e, l, cells))?;
+            let at = (path.as_ref(), done);
+            self.eval_chunk(&raw, at, paths, &mut rng, |e, l, cells| {
+                sums.add(e, l, cells)
+            })?;
+            done += got;
         }
         if sums.is_empty() {
             return Err(
@@ -187,12 +194,13 @@ impl TabularModel {
             .max(1)
     }
 
-    /// Evaluates table rows `raw` (data units, the model's columns), calling
-    /// `each(elbo, loglik, observed cells)` per row (data units). A row with no observed cell
-    /// is refused.
+    /// Evaluates table rows `raw` (data units, the model's columns; the first is data row
+    /// `first + 1` of `source`), calling `each(elbo, loglik, observed cells)` per row (data
+    /// units). A row with no observed cell is refused.
     fn eval_chunk(
         &self,
         raw: &[f64],
+        (source, first): (&Path, usize),
         paths: usize,
         rng: &mut crate::util::rng::Generator,
         mut each: impl FnMut(f64, f64, usize),
@@ -205,10 +213,10 @@ impl TabularModel {
             let (cells, jac) = self.coder.encode_into(row, &self.scaler, &mut z);
             if cells == 0 {
                 return Err(Error::Data {
-                    path: std::path::PathBuf::from("<rows>"),
+                    path: source.to_path_buf(),
                     reason: format!(
-                        "a row ({} of this chunk) has no observed cell, so it has no likelihood; leave such rows out",
-                        i + 1
+                        "data row {} has no observed cell, so it has no likelihood; leave such rows out",
+                        first + i + 1
                     ),
                 });
             }
