@@ -130,6 +130,37 @@ fn conditional(mean: &[f64], cov: &[f64], d: usize, y: &[f64], m: usize) -> (f64
     (mu, var)
 }
 
+/// The conditional covariance `[Σ_aa, Σ_ab, Σ_bb] − Σ_·O Σ_OO⁻¹ Σ_O·` of missing cells `a`
+/// and `b` given the observed cells of `y` (Bishop 2006, eq. 2.82).
+fn conditional_cov(
+    _mean: &[f64],
+    cov: &[f64],
+    d: usize,
+    y: &[f64],
+    a: usize,
+    b: usize,
+) -> [f64; 3] {
+    let o: Vec<usize> = (0..d).filter(|&j| !y[j].is_nan()).collect();
+    let k = o.len();
+    let mut s = vec![0.0; k * k];
+    for p in 0..k {
+        for q in 0..k {
+            s[p * k + q] = cov[o[p] * d + o[q]];
+        }
+    }
+    let prec = linalg::cholesky_inverse(&linalg::cholesky(&s, k).unwrap(), k);
+    let c = |u: usize, v: usize| {
+        let mut x = cov[u * d + v];
+        for p in 0..k {
+            for q in 0..k {
+                x -= cov[u * d + o[p]] * prec[p * k + q] * cov[o[q] * d + v];
+            }
+        }
+        x
+    };
+    [c(a, a), c(a, b), c(b, b)]
+}
+
 /// Held-out rows with one or two cells masked, in a fixed pattern.
 fn masked_rows(t: &Table) -> Table {
     let mut cells = Vec::new();
@@ -244,6 +275,56 @@ fn imputed_moments_match_gaussian_conditioning() {
         sd_ratio.iter().all(|r| (r - 1.0).abs() < 0.2),
         "{sd_ratio:?}"
     );
+    // The covariance of two cells missing from the same row, from many draws, against
+    // Σ_ab − Σ_aO Σ_OO⁻¹ Σ_Ob (Bishop 2006, eq. 2.82), compared as correlations on Fisher's
+    // z scale, where a correlation of n independent draws has standard error 1/√(n − 3)
+    // (Fisher 1921, Metron 1:3–32).
+    let many = model
+        .impute(
+            &held,
+            ImputeOptions {
+                paths: 1024,
+                draws: 400,
+                seed: 6,
+            },
+        )
+        .unwrap();
+    let mut zs = Vec::new();
+    for i in 0..held.n_rows() {
+        let row = held.row(i);
+        let miss: Vec<usize> = (0..D).filter(|&j| row[j].is_nan()).collect();
+        if miss.len() != 2 {
+            continue;
+        }
+        let (a, b) = (miss[0], miss[1]);
+        let xa: Vec<f64> = many.tables.iter().map(|t| t.row(i)[a]).collect();
+        let xb: Vec<f64> = many.tables.iter().map(|t| t.row(i)[b]).collect();
+        let n = xa.len() as f64;
+        let (ma, mb) = (xa.iter().sum::<f64>() / n, xb.iter().sum::<f64>() / n);
+        let cab = xa
+            .iter()
+            .zip(&xb)
+            .map(|(x, y)| (x - ma) * (y - mb))
+            .sum::<f64>()
+            / n;
+        let va = xa.iter().map(|x| (x - ma).powi(2)).sum::<f64>() / n;
+        let vb = xb.iter().map(|y| (y - mb).powi(2)).sum::<f64>() / n;
+        let r = cab / (va * vb).sqrt();
+        let exact = conditional_cov(&mean, &cov, D, row, a, b);
+        let rho = exact[1] / (exact[0] * exact[2]).sqrt();
+        zs.push((r.atanh() - rho.atanh()) * (n - 3.0).sqrt());
+    }
+    assert!(zs.len() >= 10, "{} rows with two missing cells", zs.len());
+    let (zm, _) = mean_se(&zs);
+    eprintln!(
+        "conditional correlations: mean Fisher z error {zm:.3} over {} rows",
+        zs.len()
+    );
+    assert!(
+        zm.abs() < 3.0 / (zs.len() as f64).sqrt(),
+        "mean z {zm}: {zs:?}"
+    );
+    assert!(zs.iter().all(|z| z.abs() < 4.0), "{zs:?}");
     // Observed cells are never changed.
     let filled = &out.tables[0];
     for (a, b) in held.values().iter().zip(filled.values()) {
