@@ -172,7 +172,9 @@ fn a_table_with_categories_and_missing_cells_resumes_exactly() {
         })
         .collect();
     std::fs::write(&data, format!("a,b,region,grade\n{body}")).unwrap();
-    let opts = ["--missing-marker", "?", "--continuous", "grade"];
+    // With the refit on every row: the checkpoint keeps the choice, so the resumed fit
+    // refits too.
+    let opts = ["--missing-marker", "?", "--continuous", "grade", "--refit"];
     let full = d.join("full.safetensors");
     fit(&data, &full, &[&["--epochs", "3"][..], &opts].concat());
     let half = d.join("half.safetensors");
@@ -194,6 +196,8 @@ fn a_table_with_categories_and_missing_cells_resumes_exactly() {
         .unwrap());
     assert_eq!(contents(&resumed), contents(&full));
     let info = neural_sde::inspect_checkpoint(&full).unwrap();
+    // The file holds the refit on every row.
+    assert_eq!(info.train_config.as_ref().unwrap().validation_fraction, 0.0);
     assert!(info.schema.kinds[2].is_categorical());
     assert!(!info.schema.kinds[3].is_categorical());
     assert_eq!(info.schema.missing_markers, vec!["?".to_string()]);

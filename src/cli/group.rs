@@ -67,6 +67,14 @@ impl Group {
         self.rank() == 0
     }
 
+    /// Process 0's answer to a yes-or-no question, on every process (for choices that depend
+    /// on a process's own clock, which must not differ between processes).
+    pub fn root_decides(&self, yes: bool) -> Result<bool, Failure> {
+        let mut b = vec![u8::from(yes)];
+        self.shared.broadcast(&mut b, 0)?;
+        Ok(b.first() == Some(&1))
+    }
+
     /// A handle for a trainer.
     pub fn handle(&self) -> Box<dyn Collective> {
         Box::new(self.shared.clone())

@@ -30,7 +30,8 @@ pub struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
-    /// Fit a model to a table (or to the built-in synthetic demo table with --demo). Under
+    /// Fit a model to a table (or to the built-in synthetic demo table with --demo), with early
+    /// stopping on held-out rows (and with --refit, a final fit on every row). Under
     /// `mpirun -np P` (built with the `mpi` feature) the P processes train one model together.
     Fit(Box<fit::FitArgs>),
     /// ELBO and importance-weighted log-likelihood of a model on a table, in the data's units.
