@@ -112,7 +112,14 @@ fn fit_refits_when_asked_and_keeps_the_validated_model_by_default() {
     let o = ok(run(bin()
         .arg("fit")
         .arg(&data)
-        .args(["--epochs", "300", "--refit", "--time-budget", "0.05", "--out"])
+        .args([
+            "--epochs",
+            "300",
+            "--refit",
+            "--time-budget",
+            "0.05",
+            "--out",
+        ])
         .arg(&out)));
     assert!(String::from_utf8_lossy(&o.stdout).contains("time budget"));
     assert!(!String::from_utf8_lossy(&o.stdout).contains("refitted"));
