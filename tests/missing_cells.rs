@@ -83,9 +83,8 @@ fn marginal(m: &TabularModel) -> (Vec<f64>, Vec<f64>) {
     (mean, cov)
 }
 
-/// `log N(y_o; μ_o, Σ_oo)`: a Gaussian's marginal over a subset of its coordinates is the
-/// Gaussian with the sub-vector and sub-matrix (Bishop 2006, eqs. 2.92–2.93).
-fn observed_loglik(mean: &[f64], cov: &[f64], d: usize, y: &[f64]) -> f64 {
+/// The observed cells of `y` and the inverse of `cov`'s block on them.
+fn observed_block_inverse(cov: &[f64], d: usize, y: &[f64]) -> (Vec<usize>, Vec<f64>, Vec<f64>) {
     let o: Vec<usize> = (0..d).filter(|&j| !y[j].is_nan()).collect();
     let k = o.len();
     let mut s = vec![0.0; k * k];
@@ -96,6 +95,14 @@ fn observed_loglik(mean: &[f64], cov: &[f64], d: usize, y: &[f64]) -> f64 {
     }
     let l = linalg::cholesky(&s, k).unwrap();
     let prec = linalg::cholesky_inverse(&l, k);
+    (o, prec, l)
+}
+
+/// `log N(y_o; μ_o, Σ_oo)`: a Gaussian's marginal over a subset of its coordinates is the
+/// Gaussian with the sub-vector and sub-matrix (Bishop 2006, eqs. 2.92–2.93).
+fn observed_loglik(mean: &[f64], cov: &[f64], d: usize, y: &[f64]) -> f64 {
+    let (o, prec, l) = observed_block_inverse(cov, d, y);
+    let k = o.len();
     let r: Vec<f64> = o.iter().map(|&j| y[j] - mean[j]).collect();
     let mut q = 0.0;
     for a in 0..k {
@@ -110,15 +117,8 @@ fn observed_loglik(mean: &[f64], cov: &[f64], d: usize, y: &[f64]) -> f64 {
 /// `μ_m + Σ_mo Σ_oo⁻¹ (y_o − μ_o)` and `Σ_mm − Σ_mo Σ_oo⁻¹ Σ_om` (Bishop 2006, eqs.
 /// 2.81–2.82).
 fn conditional(mean: &[f64], cov: &[f64], d: usize, y: &[f64], m: usize) -> (f64, f64) {
-    let o: Vec<usize> = (0..d).filter(|&j| !y[j].is_nan()).collect();
+    let (o, prec, _) = observed_block_inverse(cov, d, y);
     let k = o.len();
-    let mut s = vec![0.0; k * k];
-    for a in 0..k {
-        for b in 0..k {
-            s[a * k + b] = cov[o[a] * d + o[b]];
-        }
-    }
-    let prec = linalg::cholesky_inverse(&linalg::cholesky(&s, k).unwrap(), k);
     let mut mu = mean[m];
     let mut var = cov[m * d + m];
     for a in 0..k {
@@ -132,23 +132,9 @@ fn conditional(mean: &[f64], cov: &[f64], d: usize, y: &[f64], m: usize) -> (f64
 
 /// The conditional covariance `[Σ_aa, Σ_ab, Σ_bb] − Σ_·O Σ_OO⁻¹ Σ_O·` of missing cells `a`
 /// and `b` given the observed cells of `y` (Bishop 2006, eq. 2.82).
-fn conditional_cov(
-    _mean: &[f64],
-    cov: &[f64],
-    d: usize,
-    y: &[f64],
-    a: usize,
-    b: usize,
-) -> [f64; 3] {
-    let o: Vec<usize> = (0..d).filter(|&j| !y[j].is_nan()).collect();
+fn conditional_cov(cov: &[f64], d: usize, y: &[f64], a: usize, b: usize) -> [f64; 3] {
+    let (o, prec, _) = observed_block_inverse(cov, d, y);
     let k = o.len();
-    let mut s = vec![0.0; k * k];
-    for p in 0..k {
-        for q in 0..k {
-            s[p * k + q] = cov[o[p] * d + o[q]];
-        }
-    }
-    let prec = linalg::cholesky_inverse(&linalg::cholesky(&s, k).unwrap(), k);
     let c = |u: usize, v: usize| {
         let mut x = cov[u * d + v];
         for p in 0..k {
@@ -310,7 +296,7 @@ fn imputed_moments_match_gaussian_conditioning() {
         let va = xa.iter().map(|x| (x - ma).powi(2)).sum::<f64>() / n;
         let vb = xb.iter().map(|y| (y - mb).powi(2)).sum::<f64>() / n;
         let r = cab / (va * vb).sqrt();
-        let exact = conditional_cov(&mean, &cov, D, row, a, b);
+        let exact = conditional_cov(&cov, D, row, a, b);
         let rho = exact[1] / (exact[0] * exact[2]).sqrt();
         zs.push((r.atanh() - rho.atanh()) * (n - 3.0).sqrt());
     }

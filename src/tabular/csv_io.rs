@@ -306,20 +306,7 @@ impl CsvRows {
         let mut cols: Vec<ColumnSurvey> = (0..self.keep.len())
             .map(|_| ColumnSurvey::default())
             .collect();
-        loop {
-            let line = self.records + self.first_line;
-            let more = self
-                .reader
-                .read_byte_record(&mut self.rec)
-                .map_err(|e| self.error(format!("line {line}: {}", clip(&e.to_string()))))?;
-            if !more {
-                break;
-            }
-            self.records += 1;
-            if self.rec.len() == 1 && self.rec.get(0).is_some_and(<[u8]>::is_empty) {
-                continue;
-            }
-            self.check_width(line)?;
+        while let Some(line) = self.next_record()? {
             for (c, &j) in self.keep.iter().enumerate() {
                 let text = self.cell_text(j, line)?;
                 if is_missing(&rules.missing_markers, text) {
@@ -338,6 +325,27 @@ impl CsvRows {
             .zip(&names)
             .map(|(c, n)| c.kind(n, rules).map_err(|r| self.error(r)))
             .collect()
+    }
+
+    /// Reads the next record that is not a blank line and checks its width; returns its line
+    /// number, or `None` at the end of the file.
+    fn next_record(&mut self) -> Result<Option<usize>> {
+        loop {
+            let line = self.records + self.first_line;
+            let more = self
+                .reader
+                .read_byte_record(&mut self.rec)
+                .map_err(|e| self.error(format!("line {line}: {}", clip(&e.to_string()))))?;
+            if !more {
+                return Ok(None);
+            }
+            self.records += 1;
+            if self.rec.len() == 1 && self.rec.get(0).is_some_and(<[u8]>::is_empty) {
+                continue; // blank line
+            }
+            self.check_width(line)?;
+            return Ok(Some(line));
+        }
     }
 
     fn check_width(&self, line: usize) -> Result<()> {
@@ -430,20 +438,9 @@ impl CsvRows {
     pub(crate) fn next_rows(&mut self, max_rows: usize, values: &mut Vec<f64>) -> Result<usize> {
         let mut got = 0;
         while got < max_rows {
-            let line = self.records + self.first_line;
-            let more = self
-                .reader
-                .read_byte_record(&mut self.rec)
-                .map_err(|e| self.error(format!("line {line}: {}", clip(&e.to_string()))))?;
-            if !more {
+            let Some(line) = self.next_record()? else {
                 break;
-            }
-            self.records += 1;
-            let rec = &self.rec;
-            if rec.len() == 1 && rec.get(0).is_some_and(<[u8]>::is_empty) {
-                continue; // blank line
-            }
-            self.check_width(line)?;
+            };
             if self.typed.is_some() {
                 for (c, &j) in self.keep.iter().enumerate() {
                     values.push(self.typed_cell(c, j, line)?);

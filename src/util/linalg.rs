@@ -70,3 +70,18 @@ pub(crate) fn lower_triangular_inverse(l: &[f64], n: usize) -> Option<Vec<f64>> 
     }
     Some(inv)
 }
+
+/// The block of `a` (`n × n`, row-major) on rows and columns `idx`, its inverse and its
+/// Cholesky factor (both `k × k` for `k = idx.len()`), or `None` if the block is not positive
+/// definite.
+pub(crate) fn block_inverse(a: &[f64], n: usize, idx: &[usize]) -> Option<(Vec<f64>, Vec<f64>)> {
+    let k = idx.len();
+    let mut s = vec![0.0; k * k];
+    for (p, &i) in idx.iter().enumerate() {
+        for (q, &j) in idx.iter().enumerate() {
+            s[p * k + q] = a[i * n + j];
+        }
+    }
+    let l = cholesky(&s, k)?;
+    Some((cholesky_inverse(&l, k), l))
+}

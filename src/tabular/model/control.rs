@@ -189,13 +189,7 @@ fn observed_precision(cov: &[f64], d: usize, observed: &[bool]) -> Option<Vec<f6
     if k == 0 {
         return Some(out);
     }
-    let mut s = vec![0.0; k * k];
-    for (a, &i) in o.iter().enumerate() {
-        for (b, &j) in o.iter().enumerate() {
-            s[a * k + b] = cov[i * d + j];
-        }
-    }
-    let inv = crate::util::linalg::cholesky_inverse(&crate::util::linalg::cholesky(&s, k)?, k);
+    let (inv, _) = crate::util::linalg::block_inverse(cov, d, &o)?;
     for (a, &i) in o.iter().enumerate() {
         for (b, &j) in o.iter().enumerate() {
             out[i * d + j] = inv[a * k + b];

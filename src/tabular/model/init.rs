@@ -2,7 +2,7 @@
 //! when cells are missing) and each categorical column's frequencies.
 
 use super::layout::RowLayout;
-use crate::util::linalg::{cholesky, cholesky_inverse};
+use crate::util::linalg::block_inverse;
 
 /// Rows the EM start uses at most (the first ones of the shuffled training rows).
 const EM_ROWS: usize = 20_000;
@@ -24,13 +24,7 @@ pub(crate) fn conditional_map(
     let sinv = if k == 0 {
         Vec::new()
     } else {
-        let mut s = vec![0.0; k * k];
-        for (a, &i) in o.iter().enumerate() {
-            for (b, &j) in o.iter().enumerate() {
-                s[a * k + b] = cov[i * d + j];
-            }
-        }
-        cholesky_inverse(&cholesky(&s, k)?, k)
+        block_inverse(cov, d, o)?.0
     };
     let mut bm = vec![0.0; q * k];
     for (a, &i) in m.iter().enumerate() {

@@ -11,7 +11,7 @@
 
 use candle_core::{bail, CpuStorage, CustomOp2, Layout, Result, Shape, Tensor};
 
-use crate::util::linalg::{cholesky, cholesky_inverse, lower_triangular_inverse};
+use crate::util::linalg::{block_inverse, lower_triangular_inverse};
 
 /// Per-row cost of the observed cells, `(n)`, for `factor` `P` `(D, D)`, `residual`
 /// `(n, D)` and `observed` (row-major `n × D`, `true` for an observed cell). A row with no
@@ -75,16 +75,9 @@ fn row_terms(cov: &[f64], d: usize, r: &[f64], obs: &[bool]) -> Result<RowTerms>
             cost: 0.0,
         });
     }
-    let mut s = vec![0.0; k * k];
-    for (a, &i) in o.iter().enumerate() {
-        for (b, &j) in o.iter().enumerate() {
-            s[a * k + b] = cov[i * d + j];
-        }
-    }
-    let Some(l) = cholesky(&s, k) else {
+    let Some((sinv, l)) = block_inverse(cov, d, &o) else {
         bail!("masked Gaussian: the observed cells' covariance is not positive definite")
     };
-    let sinv = cholesky_inverse(&l, k);
     let ro: Vec<f64> = o.iter().map(|&j| r[j]).collect();
     let a: Vec<f64> = (0..k)
         .map(|x| (0..k).map(|y| sinv[x * k + y] * ro[y]).sum())
