@@ -18,7 +18,7 @@ use serde::{Deserialize, Serialize};
 use crate::error::{Error, Result};
 use crate::tabular::fitted::TabularModel;
 use crate::tabular::model::init::conditional_map;
-use crate::tabular::model::softmax;
+use crate::tabular::model::{pick, softmax};
 use crate::tabular::table::Table;
 use crate::util::rng::{key2, keyed_generator, standard_normals, streams, uniform};
 
@@ -399,16 +399,4 @@ impl RowPlan {
             .map(|(a, &m)| mean[m] + (0..k).map(|b| self.gain[a * k + b] * r[b]).sum::<f64>())
             .collect()
     }
-}
-
-/// The index drawn by uniform `u` from probabilities `p`.
-fn pick(p: &[f64], u: f64) -> usize {
-    let mut acc = 0.0;
-    for (i, x) in p.iter().enumerate() {
-        acc += x;
-        if u < acc {
-            return i;
-        }
-    }
-    p.len().saturating_sub(1)
 }

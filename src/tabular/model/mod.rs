@@ -819,16 +819,20 @@ impl LatentModel {
 
 /// A level drawn from the softmax of `logits` with one uniform draw from `rng`.
 pub(crate) fn draw_level(logits: &[f64], rng: &mut dyn RngCore) -> usize {
-    let probs = softmax(logits);
-    let u = crate::util::rng::uniform(rng);
+    pick(&softmax(logits), crate::util::rng::uniform(rng))
+}
+
+/// The index that a uniform draw `u` in `[0, 1)` selects from probabilities `p` (inverse
+/// transform of the cumulative sums; the last index when rounding leaves `u` above them).
+pub(crate) fn pick(p: &[f64], u: f64) -> usize {
     let mut acc = 0.0;
-    for (i, p) in probs.iter().enumerate() {
-        acc += p;
+    for (i, x) in p.iter().enumerate() {
+        acc += x;
         if u < acc {
             return i;
         }
     }
-    probs.len().saturating_sub(1)
+    p.len().saturating_sub(1)
 }
 
 /// `softmax(logits)`, computed stably.
