@@ -80,6 +80,12 @@ fn permutation_p_value_at_its_extremes() {
     .unwrap();
     assert_eq!(c.energy_p_value, 1.0 / 200.0);
     assert_eq!(c.columns[0].value, 1.0);
+    let none = CompareOptions {
+        permutations: 0,
+        ..CompareOptions::default()
+    };
+    let e = compare_samples(&one_column(&A), &one_column(&B), none).unwrap_err();
+    assert!(e.to_string().contains("at least 1 permutation"), "{e}");
 }
 
 #[test]

@@ -29,6 +29,25 @@ impl Default for CompareOptions {
     }
 }
 
+impl CompareOptions {
+    /// Checks the settings.
+    ///
+    /// # Errors
+    /// [`Error::InvalidConfig`] for 0 permutations, fewer than 2 rows, or more than the
+    /// crate allows (100,000 permutations, 20,000 rows).
+    pub fn validate(&self) -> Result<()> {
+        if self.permutations == 0 || self.max_rows < 2 {
+            return Err(Error::config(
+                "permutations / max_rows",
+                format!("{} / {}", self.permutations, self.max_rows),
+                "use at least 1 permutation and 2 rows",
+            ));
+        }
+        crate::util::limits::at_most("permutations", self.permutations, 100_000, "permutations")?;
+        crate::util::limits::at_most("max_rows", self.max_rows, 20_000, "rows")
+    }
+}
+
 /// One column's two-sample statistic.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ColumnComparison {
@@ -154,26 +173,24 @@ fn correlations(t: &Table, cols: &[usize]) -> Vec<f64> {
 ///
 /// # Errors
 /// [`Error::Data`] if the tables' columns or types differ, or a column has no observed cell
-/// in one of them; [`Error::InvalidConfig`] for 0 permutations or rows.
+/// in one of them; [`Error::InvalidConfig`] for bad options ([`CompareOptions::validate`]).
+///
+/// # Example
+/// ```
+/// use neural_sde::{compare_samples, CompareOptions, Table};
+/// let a = Table::new(vec!["x".into()], (0..40).map(|i| vec![i as f64]).collect())?;
+/// let b = Table::new(vec!["x".into()], (0..40).map(|i| vec![i as f64 + 100.0]).collect())?;
+/// let c = compare_samples(&a, &b, CompareOptions::default())?;
+/// assert_eq!(c.columns[0].value, 1.0); // the two CDFs never overlap
+/// assert!(c.energy_p_value < 0.01); // told apart
+/// # Ok::<(), neural_sde::Error>(())
+/// ```
 pub fn compare_samples(
     generated: &Table,
     data: &Table,
     options: CompareOptions,
 ) -> Result<SampleComparison> {
-    if options.permutations == 0 || options.max_rows < 2 {
-        return Err(Error::config(
-            "permutations / max_rows",
-            format!("{} / {}", options.permutations, options.max_rows),
-            "use at least 1 permutation and 2 rows",
-        ));
-    }
-    crate::util::limits::at_most(
-        "permutations",
-        options.permutations,
-        100_000,
-        "permutations",
-    )?;
-    crate::util::limits::at_most("max_rows", options.max_rows, 20_000, "rows")?;
+    options.validate()?;
     if generated.columns() != data.columns() || generated.kinds() != data.kinds() {
         return Err(Error::Data {
             path: data.source().to_path_buf(),
