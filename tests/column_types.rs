@@ -212,6 +212,16 @@ fn the_command_line_refuses_bad_tables_and_unseen_levels_and_writes_nothing() {
         .args(["--rows", "3", "--given", "nope=1", "--out"])
         .arg(&filled));
     assert_input_error(&o, &["unknown column 'nope'"]);
+    // Copies that would not fit in memory are refused before any work: 10,000 draws of
+    // 7,000 rows × 4 columns are 2.8e8 cells.
+    let big = write(&d, "big.csv", &mixed_text(7000));
+    let o = run(bin()
+        .arg("impute")
+        .arg(&out)
+        .arg(&big)
+        .args(["--draws", "10000", "--out"])
+        .arg(&filled));
+    assert_input_error(&o, &["draws", "in memory"]);
     assert!(!filled.exists());
 }
 

@@ -110,7 +110,8 @@ impl TabularModel {
     /// the seed and the table, not on the chunking.
     ///
     /// # Errors
-    /// As [`TabularModel::evaluate`] for the table; [`Error::InvalidConfig`] for bad options.
+    /// As [`TabularModel::evaluate`] for the table; [`Error::InvalidConfig`] for bad options,
+    /// or more than [`crate::limits::MAX_IMPUTED_VALUES`] cells in all the draws.
     ///
     /// # Example
     /// ```
@@ -132,6 +133,19 @@ impl TabularModel {
         options.validate()?;
         let table = self.matching(table)?;
         let d = self.columns.len();
+        let values = options.draws.saturating_mul(table.values().len());
+        if values > crate::util::limits::MAX_IMPUTED_VALUES {
+            return Err(Error::config(
+                "draws",
+                options.draws,
+                format!(
+                    "{} draws of {} rows × {d} columns would hold {values} cells in memory, more than the {} allowed; draw fewer copies or impute the table in parts",
+                    options.draws,
+                    table.n_rows(),
+                    crate::util::limits::MAX_IMPUTED_VALUES
+                ),
+            ));
+        }
         let layout = self.coder.layout().clone();
         let dc = layout.continuous;
         let cov = self.noise_covariance()?;

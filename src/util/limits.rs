@@ -19,6 +19,8 @@ pub const MAX_PARAMETERS: u64 = 50_000_000;
 pub const MAX_BATCH: usize = 1_000_000;
 /// Most rows one `generate_csv` call writes.
 pub const MAX_GENERATED_ROWS: usize = 100_000_000;
+/// Most cells one imputation call holds in memory: draws × rows × columns (2 GiB of f64).
+pub const MAX_IMPUTED_VALUES: usize = 1 << 28;
 /// Most values (f32 or f64) one training step may keep for backpropagation, or one
 /// inference chunk may draw as noise: 2³⁰ values (4 GiB in f32).
 pub const MAX_STEP_VALUES: u64 = 1 << 30;
