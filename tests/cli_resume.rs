@@ -34,6 +34,19 @@ fn fit(data: &Path, out: &Path, extra: &[&str]) -> Output {
         .unwrap())
 }
 
+/// `fit DATA --resume FROM --out OUT`, which must succeed.
+fn resume(data: &Path, from: &Path, out: &Path) -> Output {
+    ok(bin()
+        .arg("fit")
+        .arg(data)
+        .arg("--resume")
+        .arg(from)
+        .arg("--out")
+        .arg(out)
+        .output()
+        .unwrap())
+}
+
 /// Every tensor's bytes by name, and the header with its `timing` field removed.
 fn contents(p: &Path) -> (BTreeMap<String, Vec<u8>>, serde_json::Value) {
     let bytes = std::fs::read(p).unwrap();
@@ -66,15 +79,7 @@ fn stopping_and_resuming_gives_the_model_of_one_run() {
     let half = d.join("half.safetensors");
     fit(&data, &half, &["--epochs", "4", "--stop-after", "2"]);
     let resumed = d.join("resumed.safetensors");
-    ok(bin()
-        .arg("fit")
-        .arg(&data)
-        .arg("--resume")
-        .arg(&half)
-        .arg("--out")
-        .arg(&resumed)
-        .output()
-        .unwrap());
+    resume(&data, &half, &resumed);
     assert_eq!(contents(&resumed), contents(&full));
     // One epoch at a time.
     let mut prev = d.join("e1.safetensors");
@@ -185,15 +190,7 @@ fn a_table_with_categories_and_missing_cells_resumes_exactly() {
     );
     // Resuming reads the table with the checkpoint's column types and markers.
     let resumed = d.join("resumed.safetensors");
-    ok(bin()
-        .arg("fit")
-        .arg(&data)
-        .arg("--resume")
-        .arg(&half)
-        .arg("--out")
-        .arg(&resumed)
-        .output()
-        .unwrap());
+    resume(&data, &half, &resumed);
     assert_eq!(contents(&resumed), contents(&full));
     let info = neural_sde::inspect_checkpoint(&full).unwrap();
     // The file holds the refit on every row.

@@ -4,7 +4,6 @@ mod common;
 #[path = "support/dense.rs"]
 mod linalg;
 
-use candle_core::DType;
 use common::*;
 use neural_sde::*;
 
@@ -23,18 +22,6 @@ fn gaussian_table(n: usize) -> Table {
         })
         .collect();
     Table::new(vec!["a".into(), "b".into(), "c".into()], rows).unwrap()
-}
-
-fn param(m: &TabularModel, name: &str) -> Vec<f64> {
-    let map = m.latent().varmap().data().lock().unwrap();
-    map[name]
-        .as_tensor()
-        .to_dtype(DType::F64)
-        .unwrap()
-        .flatten_all()
-        .unwrap()
-        .to_vec1()
-        .unwrap()
 }
 
 /// Closed form: with zero prior drift Euler–Maruyama is exact, Z_T ~ N(0, σ²T I), so

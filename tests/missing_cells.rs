@@ -6,7 +6,6 @@ mod common;
 #[path = "support/dense.rs"]
 mod linalg;
 
-use candle_core::DType;
 use common::*;
 use neural_sde::*;
 
@@ -32,18 +31,6 @@ fn gaussian_table(n: usize) -> Table {
         })
         .collect();
     Table::new(vec!["a".into(), "b".into(), "c".into(), "d".into()], rows).unwrap()
-}
-
-fn param(m: &TabularModel, name: &str) -> Vec<f64> {
-    let map = m.latent().varmap().data().lock().unwrap();
-    map[name]
-        .as_tensor()
-        .to_dtype(DType::F64)
-        .unwrap()
-        .flatten_all()
-        .unwrap()
-        .to_vec1()
-        .unwrap()
 }
 
 /// The model's marginal of the continuous cells in the data's units, `N(μ, Σ)`: with zero

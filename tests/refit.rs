@@ -6,6 +6,7 @@ mod cli;
 
 use cli::*;
 use neural_sde::{LatentConfig, Table, TrainConfig, Trainer};
+use std::path::Path;
 
 /// A small table (demo data for the check).
 fn table(n: usize) -> Table {
@@ -78,6 +79,22 @@ fn refit_trains_on_every_row_for_the_validated_epochs() {
     assert!(paused.refit(&t).unwrap().is_none());
 }
 
+/// `fit DATA ARGS --out OUT` (which must succeed): what it printed, and the training
+/// settings stored in OUT.
+fn fit(data: &Path, out: &Path, args: &[&str]) -> (String, TrainConfig) {
+    let o = ok(run(bin()
+        .arg("fit")
+        .arg(data)
+        .args(args)
+        .arg("--out")
+        .arg(out)));
+    let tc = neural_sde::inspect_checkpoint(out)
+        .unwrap()
+        .train_config
+        .unwrap();
+    (String::from_utf8_lossy(&o.stdout).into_owned(), tc)
+}
+
 #[test]
 fn fit_refits_when_asked_and_keeps_the_validated_model_by_default() {
     let d = dir("refit");
@@ -85,47 +102,18 @@ fn fit_refits_when_asked_and_keeps_the_validated_model_by_default() {
     let t = table(150);
     t.write_csv(&data).unwrap();
     let out = d.join("m.safetensors");
-    let o = ok(run(bin()
-        .arg("fit")
-        .arg(&data)
-        .args(["--epochs", "3", "--refit", "--out"])
-        .arg(&out)));
-    let text = String::from_utf8_lossy(&o.stdout);
+    let (text, tc) = fit(&data, &out, &["--epochs", "3", "--refit"]);
     assert!(text.contains("refitted on all 150 rows for"), "{text}");
-    let s = neural_sde::inspect_checkpoint(&out).unwrap();
-    let tc = s.train_config.unwrap();
     assert_eq!(tc.validation_fraction, 0.0);
     assert!(tc.epochs <= 3 && tc.epochs >= 1);
-    let o = ok(run(bin()
-        .arg("fit")
-        .arg(&data)
-        .args(["--epochs", "3", "--out"])
-        .arg(&out)));
-    assert!(!String::from_utf8_lossy(&o.stdout).contains("refitted"));
-    let tc = neural_sde::inspect_checkpoint(&out)
-        .unwrap()
-        .train_config
-        .unwrap();
+    let (text, tc) = fit(&data, &out, &["--epochs", "3"]);
+    assert!(!text.contains("refitted"));
     assert_eq!(tc.validation_fraction, 0.2);
     assert_eq!(tc.epochs, 3);
     // A fit ended by its time budget is not refitted: its best epoch says little.
-    let o = ok(run(bin()
-        .arg("fit")
-        .arg(&data)
-        .args([
-            "--epochs",
-            "300",
-            "--refit",
-            "--time-budget",
-            "0.05",
-            "--out",
-        ])
-        .arg(&out)));
-    assert!(String::from_utf8_lossy(&o.stdout).contains("time budget"));
-    assert!(!String::from_utf8_lossy(&o.stdout).contains("refitted"));
-    let tc = neural_sde::inspect_checkpoint(&out)
-        .unwrap()
-        .train_config
-        .unwrap();
+    let args = ["--epochs", "300", "--refit", "--time-budget", "0.05"];
+    let (text, tc) = fit(&data, &out, &args);
+    assert!(text.contains("time budget"));
+    assert!(!text.contains("refitted"));
     assert_eq!(tc.validation_fraction, 0.2);
 }

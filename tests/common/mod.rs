@@ -50,6 +50,19 @@ pub fn column(t: &Tensor, j: usize) -> Vec<f64> {
         .collect()
 }
 
+/// A tabular model's parameter `name`, flattened, as f64.
+pub fn param(m: &neural_sde::TabularModel, name: &str) -> Vec<f64> {
+    let map = m.latent().varmap().data().lock().unwrap();
+    map[name]
+        .as_tensor()
+        .to_dtype(DType::F64)
+        .unwrap()
+        .flatten_all()
+        .unwrap()
+        .to_vec1()
+        .unwrap()
+}
+
 /// A `(batch,)` tensor as f64.
 pub fn vec1(t: &Tensor) -> Vec<f64> {
     t.to_dtype(DType::F64).unwrap().to_vec1::<f64>().unwrap()

@@ -91,22 +91,9 @@ pub(crate) fn gaussian_moments(rows: &[f64], layout: &RowLayout) -> (Vec<f64>, V
         }
     }
     let n = data.len().max(1) as f64;
-    // Observed means and variances start EM (and are the answer for complete rows' means).
-    let mut mean = vec![0.0; dc];
-    let mut var = vec![0.0; dc];
-    for j in 0..dc {
-        let col: Vec<f64> = data
-            .iter()
-            .filter(|(_, o)| o[j])
-            .map(|(x, _)| x[j])
-            .collect();
-        let c = col.len().max(1) as f64;
-        mean[j] = col.iter().sum::<f64>() / c;
-        var[j] = (col.iter().map(|x| (x - mean[j]).powi(2)).sum::<f64>() / c).max(1e-6);
-    }
     let complete = data.iter().all(|(_, o)| o.iter().all(|&b| b));
     if complete {
-        // Summed as x / n (the order every complete fit has used).
+        // The sample moments, summed as x / n (the order every complete fit has used).
         let mut mean = vec![0.0; dc];
         for (x, _) in &data {
             for (m, v) in mean.iter_mut().zip(x) {
@@ -123,9 +110,18 @@ pub(crate) fn gaussian_moments(rows: &[f64], layout: &RowLayout) -> (Vec<f64>, V
         }
         return (mean, cov);
     }
+    // EM starts from the observed cells' means and variances.
+    let mut mean = vec![0.0; dc];
     let mut cov = vec![0.0; dc * dc];
     for j in 0..dc {
-        cov[j * dc + j] = var[j];
+        let col: Vec<f64> = data
+            .iter()
+            .filter(|(_, o)| o[j])
+            .map(|(x, _)| x[j])
+            .collect();
+        let c = col.len().max(1) as f64;
+        mean[j] = col.iter().sum::<f64>() / c;
+        cov[j * dc + j] = (col.iter().map(|x| (x - mean[j]).powi(2)).sum::<f64>() / c).max(1e-6);
     }
     for _ in 0..EM_ITERATIONS {
         let mut t1 = vec![0.0; dc];
