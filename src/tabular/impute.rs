@@ -100,6 +100,17 @@ struct RowPlan {
     /// `Σ_mo Σ_oo⁻¹` and the Cholesky factor of `Σ_mm − Σ_mo Σ_oo⁻¹ Σ_om`.
     gain: Vec<f64>,
     chol: Vec<f64>,
+    /// `Σ_oo⁻¹` and `log |Σ_oo|` (the observed cells' density, for a component's
+    /// responsibility).
+    oo_inv: Vec<f64>,
+    oo_log_det: f64,
+}
+
+/// One component of the continuous cells' observation noise (standardised units).
+struct NoiseComponent {
+    log_weight: f64,
+    offset: Vec<f64>,
+    covariance: Vec<f64>,
 }
 
 impl TabularModel {
@@ -148,7 +159,8 @@ impl TabularModel {
         }
         let layout = self.coder.layout().clone();
         let dc = layout.continuous;
-        let cov = self.noise_covariance()?;
+        let components = self.noise_components()?;
+        let m_count = components.len();
         let k = options.paths;
         let chunk = self
             .model
@@ -193,30 +205,60 @@ impl TabularModel {
                 w.iter_mut().for_each(|x| *x /= total);
                 ess.push(1.0 / w.iter().map(|x| x * x).sum::<f64>());
                 let outs = &terms.outputs[at * ow..(at + k) * ow];
-                let plan = self.plan(row, &cont, &cov, dc)?;
+                let plans = components
+                    .iter()
+                    .map(|c| self.plan(row, &cont, &c.covariance, dc))
+                    .collect::<Result<Vec<_>>>()?;
                 // Standardised observed continuous values.
                 let y: Vec<f64> = cont
                     .iter()
                     .enumerate()
                     .map(|(c, &j)| (row[j] - self.scaler.mean[c]) / self.scaler.scale[c])
                     .collect();
-                // Conditional means of the missing continuous cells per path.
-                let cond: Vec<Vec<f64>> = (0..k)
-                    .map(|p| plan.conditional_mean(&outs[p * ow..p * ow + dc], &y))
-                    .collect();
-                self.estimates((i, row), &plan, &cond, &w, outs, &cat, &layout, &mut cells);
+                // Per path and component: the missing cells' conditional means, and the
+                // weight of the pair (the path's weight times the component's
+                // responsibility for the observed cells on that path).
+                let mut cond = Vec::with_capacity(k * m_count);
+                let mut pair_w = Vec::with_capacity(k * m_count);
+                for (p, wp) in w.iter().enumerate() {
+                    let mean = &outs[p * ow..p * ow + dc];
+                    let mut logr = Vec::with_capacity(m_count);
+                    for (comp, plan) in components.iter().zip(&plans) {
+                        let shifted: Vec<f64> =
+                            mean.iter().zip(&comp.offset).map(|(a, b)| a + b).collect();
+                        cond.push(plan.conditional_mean(&shifted, &y));
+                        logr.push(if m_count == 1 {
+                            0.0
+                        } else {
+                            comp.log_weight + plan.observed_log_density(&shifted, &y)
+                        });
+                    }
+                    let r = softmax(&logr);
+                    pair_w.extend(r.iter().map(|r| wp * r));
+                }
+                self.estimates(
+                    (i, row),
+                    &plans,
+                    &cond,
+                    (&w, &pair_w),
+                    outs,
+                    &cat,
+                    &layout,
+                    &mut cells,
+                );
                 for (draw, t) in tables.iter_mut().enumerate() {
                     let mut rng = keyed_generator(
                         options.seed,
                         streams::IMPUTE_DRAWS,
                         key2(i as u64, draw as u64),
                     );
-                    let p = pick(&w, uniform(&mut rng));
+                    let pair = pick(&pair_w, uniform(&mut rng));
+                    let (p, plan) = (pair / m_count, &plans[pair % m_count]);
                     let eps = standard_normals(&mut rng, plan.missing.len());
                     let q = plan.missing.len();
                     for (a, &c) in plan.missing.iter().enumerate() {
                         let noise: f64 = (0..=a).map(|b| plan.chol[a * q + b] * eps[b]).sum();
-                        let z = cond[p][a] + noise;
+                        let z = cond[pair][a] + noise;
                         t[i * d + cont[c]] = z * self.scaler.scale[c] + self.scaler.mean[c];
                     }
                     let mut off = dc;
@@ -310,17 +352,32 @@ impl TabularModel {
         self.impute(&self.table_of(values)?, options)
     }
 
-    /// The continuous cells' noise covariance `Σ = P⁻¹P⁻ᵀ` (standardised units).
-    fn noise_covariance(&self) -> Result<Vec<f64>> {
-        let f = self.model.noise_factor()?;
+    /// The components of the continuous cells' observation noise (one, with offset zero,
+    /// when the noise is a single Gaussian `N(0, P⁻¹P⁻ᵀ)`).
+    fn noise_components(&self) -> Result<Vec<NoiseComponent>> {
         let dc = self.coder.layout().continuous;
+        if let Some(mix) = self.model.noise_mixture()? {
+            let dd = dc * dc;
+            return Ok((0..mix.log_weights.len())
+                .map(|k| NoiseComponent {
+                    log_weight: mix.log_weights[k],
+                    offset: mix.offsets[k * dc..(k + 1) * dc].to_vec(),
+                    covariance: mix.covariances[k * dd..(k + 1) * dd].to_vec(),
+                })
+                .collect());
+        }
+        let f = self.model.noise_factor()?;
         let mut cov = vec![0.0; dc * dc];
         for i in 0..dc {
             for j in 0..dc {
                 cov[i * dc + j] = (0..dc).map(|k| f[i * dc + k] * f[j * dc + k]).sum();
             }
         }
-        Ok(cov)
+        Ok(vec![NoiseComponent {
+            log_weight: 0.0,
+            offset: vec![0.0; dc],
+            covariance: cov,
+        }])
     }
 
     fn plan(&self, row: &[f64], cont: &[usize], cov: &[f64], dc: usize) -> Result<RowPlan> {
@@ -344,35 +401,59 @@ impl TabularModel {
             }
             c
         });
+        let (oo_inv, oo_log_det) = if observed.is_empty() {
+            (Vec::new(), 0.0)
+        } else {
+            let (inv, l) =
+                crate::util::linalg::block_inverse(cov, dc, &observed).ok_or_else(|| {
+                    Error::NonFinite {
+                        what: "observation covariance".into(),
+                        detail: "it is not positive definite; the model file may be damaged".into(),
+                    }
+                })?;
+            let ld = crate::util::linalg::log_det_from_cholesky(&l, observed.len());
+            (inv, ld)
+        };
         Ok(RowPlan {
             missing,
             observed,
             gain,
             chol,
+            oo_inv,
+            oo_log_det,
         })
     }
 
+    /// The estimates of row `i`'s missing cells: for a continuous cell the mixture moments
+    /// over every (path, component) pair (`pair_w`, `cond`, and each component's `plans`),
+    /// for a categorical one the path-weighted (`w`) level probabilities.
     #[allow(clippy::too_many_arguments)]
     fn estimates(
         &self,
         (i, row): (usize, &[f64]),
-        plan: &RowPlan,
+        plans: &[RowPlan],
         cond: &[Vec<f64>],
-        w: &[f64],
+        (w, pair_w): (&[f64], &[f64]),
         outs: &[f64],
         cat: &[usize],
         layout: &crate::tabular::model::RowLayout,
         cells: &mut Vec<CellEstimate>,
     ) {
-        let q = plan.missing.len();
+        let m_count = plans.len();
+        let q = plans[0].missing.len();
         let ow = layout.output_width();
         let cont = self.coder.continuous();
-        // Mixture moments: mean Σ w μ_k; variance Σ w (C + μ_k²) − mean².
-        for (a, &c) in plan.missing.iter().enumerate() {
-            let m: f64 = w.iter().zip(cond).map(|(w, mu)| w * mu[a]).sum();
-            let second: f64 = w.iter().zip(cond).map(|(w, mu)| w * mu[a] * mu[a]).sum();
-            let cvar: f64 = (0..=a).map(|b| plan.chol[a * q + b].powi(2)).sum();
-            let var = (cvar + second - m * m).max(0.0);
+        // Mixture moments: mean Σ w μ; variance Σ w (C + μ²) − mean².
+        for (a, &c) in plans[0].missing.iter().enumerate() {
+            let mut m = 0.0;
+            let mut second = 0.0;
+            for (pair, (wp, mu)) in pair_w.iter().zip(cond).enumerate() {
+                let chol = &plans[pair % m_count].chol;
+                let cvar: f64 = (0..=a).map(|b| chol[a * q + b].powi(2)).sum();
+                m += wp * mu[a];
+                second += wp * (cvar + mu[a] * mu[a]);
+            }
+            let var = (second - m * m).max(0.0);
             cells.push(CellEstimate {
                 row: i,
                 column: cont[c],
@@ -403,6 +484,19 @@ impl TabularModel {
 }
 
 impl RowPlan {
+    /// `log N(y_o; mean_o, Σ_oo)` (0 when no cell is observed).
+    fn observed_log_density(&self, mean: &[f64], y: &[f64]) -> f64 {
+        let k = self.observed.len();
+        if k == 0 {
+            return 0.0;
+        }
+        let r: Vec<f64> = self.observed.iter().map(|&o| y[o] - mean[o]).collect();
+        let quad: f64 = (0..k)
+            .map(|a| r[a] * (0..k).map(|b| self.oo_inv[a * k + b] * r[b]).sum::<f64>())
+            .sum();
+        -0.5 * (quad + self.oo_log_det + k as f64 * (2.0 * std::f64::consts::PI).ln())
+    }
+
     /// `m_m + Σ_mo Σ_oo⁻¹ (y_o − m_o)` for means `mean` and standardised values `y`.
     fn conditional_mean(&self, mean: &[f64], y: &[f64]) -> Vec<f64> {
         let k = self.observed.len();

@@ -10,6 +10,8 @@ pub const MAX_DEPTH: usize = 64;
 pub const MAX_STEPS: usize = 100_000;
 /// Largest latent dimension.
 pub const MAX_LATENT_DIM: usize = 4_096;
+/// Most components of a tabular model's observation-noise mixture.
+pub const MAX_NOISE_COMPONENTS: usize = 32;
 /// Most columns a tabular model fits (its full-covariance decoder grows with their square).
 pub const MAX_COLUMNS: usize = 1_000;
 /// Most parameters of one model (200 MB in f32; a checkpoint also keeps two optimiser

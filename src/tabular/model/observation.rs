@@ -8,6 +8,7 @@ use candle_core::{DType, Device, Module, Tensor};
 
 use super::decoder::Decoder;
 use super::layout::RowLayout;
+use super::noise_mixture::NoiseMixture;
 use crate::error::{Error, Result};
 use crate::nn::params::{Param, ParamBuilder};
 use crate::sde::terminal::TerminalCost;
@@ -192,12 +193,23 @@ impl FullGaussian {
 #[derive(Clone)]
 pub(crate) struct Observation {
     pub(crate) gaussian: FullGaussian,
+    /// The continuous cells' noise when it is a mixture (the Gaussian's own precision
+    /// factor then serves the control's score term only).
+    pub(crate) mixture: Option<NoiseMixture>,
     layout: RowLayout,
 }
 
 impl Observation {
-    pub(crate) fn new(gaussian: FullGaussian, layout: RowLayout) -> Self {
-        Self { gaussian, layout }
+    pub(crate) fn new(
+        gaussian: FullGaussian,
+        mixture: Option<NoiseMixture>,
+        layout: RowLayout,
+    ) -> Self {
+        Self {
+            gaussian,
+            mixture,
+            layout,
+        }
     }
 
     /// `−log p(y_obs | z)` per row from the decoder's outputs `out` at `z`.
@@ -222,13 +234,23 @@ impl Observation {
                 .flatten_all()?
                 .to_vec1::<f64>()?;
             let observed: Vec<bool> = mask.iter().map(|&m| m > 0.5).collect();
-            if observed.iter().all(|&o| o) {
+            if let Some(mix) = &self.mixture {
+                let r = (&y_c - &mean)?;
+                if observed.iter().all(|&o| o) {
+                    mix.nll(&r)?
+                } else {
+                    mix.masked_nll(&r, &observed)?
+                }
+            } else if observed.iter().all(|&o| o) {
                 self.gaussian.nll_per_dim_at(&mean, &y_c)?.sum(1)?
             } else {
                 self.gaussian.masked_nll(&mean, &y_c, observed)?
             }
         } else if width == l.output_width() {
-            self.gaussian.nll_per_dim_at(&mean, &y_c)?.sum(1)?
+            match &self.mixture {
+                Some(mix) => mix.nll(&(&y_c - &mean)?)?,
+                None => self.gaussian.nll_per_dim_at(&mean, &y_c)?.sum(1)?,
+            }
         } else {
             return Err(candle_core::Error::Msg(format!(
                 "observation rows have {width} values; expected {} or {}",
