@@ -132,6 +132,7 @@ pub use tabular::summary::{inspect_checkpoint, CheckpointSummary};
 pub use tabular::table::{write_draws_csv, Table};
 pub use tabular::train::{
     EpochRecord, History, Observer, StepInfo, TrainConfig, TrainReport, TrainState, Trainer,
+    VALIDATION_LOGLIK_PATHS,
 };
 pub use util::fs::writable_destination;
 pub use util::limits;

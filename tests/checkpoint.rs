@@ -144,11 +144,13 @@ fn child_saver() {
     let path = std::env::var("NEURAL_SDE_CHILD_SAVE").expect("run by the parent test only");
     let t = table();
     let (m, c) = cfg();
+    // One Gaussian start: the mixture's EM would take longer than the kill delays below.
     let m = LatentConfig {
         control: MlpConfig {
             width: 256,
             ..Default::default()
         },
+        noise_components: Some(1),
         ..m
     };
     let tr = Trainer::new(&t, m, TrainConfig { seed: 77, ..c }).unwrap();
@@ -161,11 +163,13 @@ fn child_saver() {
 fn a_save_killed_midway_leaves_a_complete_file() {
     let t = table();
     let (m, c) = cfg();
+    // One Gaussian start: the mixture's EM would take longer than the kill delays below.
     let m = LatentConfig {
         control: MlpConfig {
             width: 256,
             ..Default::default()
         },
+        noise_components: Some(1),
         ..m
     };
     let d = dir("kill");

@@ -1,21 +1,46 @@
-//! Real open data: the latent-diffusion model at default settings against a full-covariance
-//! Gaussian fitted by maximum likelihood on the same training rows.
+//! Real open data: the latent-diffusion model at default settings, with the `fit` command's
+//! protocol (the start BIC chooses, and when that is a mixture also the start from one
+//! Gaussian, keeping the better on the validation rows), against classical models fitted to
+//! the same training rows: the full-covariance Gaussian by maximum likelihood, and the best
+//! of the Gaussian mixtures with diagonal and with full covariances whose component counts
+//! BIC chooses (Schwarz 1978, *Estimating the dimension of a model*, Ann. Stat. 6(2)), the
+//! best judged on the held-out rows themselves, which favours the mixture.
 #[path = "support/baseline.rs"]
 mod baseline;
 
-use neural_sde::{EvalOptions, LatentConfig, TrainConfig, Trainer};
+use neural_sde::{
+    Covariance, EvalOptions, LatentConfig, MixtureModel, MixtureOptions, Table, TabularModel,
+    TrainConfig, Trainer,
+};
 
-/// Trains at default settings on the "mod5" training rows and returns the held-out
-/// log-likelihood per dimension (data units) of the model and of the Gaussian, and the
-/// paired comparison: the mean over held-out rows of (model − Gaussian) per dimension with
-/// its standard error (both evaluated on the same rows, so row-to-row spread cancels).
-fn compare(table: &neural_sde::Table, train_cfg: TrainConfig) -> Comparison {
-    compare_seeds(table, train_cfg, &[None])
+/// The `fit` command's default protocol on `train` (see the module docs).
+fn default_fit(train: &Table, cfg: TrainConfig) -> TabularModel {
+    let mut trainer = Trainer::new(train, LatentConfig::default(), cfg).unwrap();
+    trainer.fit().unwrap();
+    if let Some(mut other) = trainer.gaussian_start(train).unwrap() {
+        other.fit().unwrap();
+        trainer.keep_better(other).unwrap();
+    }
+    trainer.into_model()
 }
 
-/// As [`compare`], for the mean over fits with each seed of `seeds` (`None`: the config's
-/// own) of the per-row held-out log-likelihood: the gain of the default model averaged over
-/// training randomness, with its standard error over held-out rows.
+/// Held-out log-density per row of the BIC-chosen Gaussian mixtures with full and with
+/// diagonal covariances fitted on `train`.
+fn mixture_rows(train: &Table, test: &Table) -> [Vec<f64>; 2] {
+    let options = MixtureOptions::default();
+    [Covariance::Full, Covariance::Diagonal].map(|c| {
+        MixtureModel::select(train, c, &options)
+            .unwrap()
+            .log_density_rows(test)
+            .unwrap()
+    })
+}
+
+/// The default protocol on the "mod5" training rows with `train_cfg` and each seed of
+/// `seeds` (`None`: the config's own): the model's held-out log-likelihood per dimension
+/// (data units; per row averaged over the seeds) against the Gaussian and the best mixture,
+/// each as the paired mean over held-out rows of (model − baseline) per dimension with its
+/// standard error (row-to-row spread cancels).
 fn compare_seeds(
     table: &neural_sde::Table,
     train_cfg: TrainConfig,
@@ -23,6 +48,14 @@ fn compare_seeds(
 ) -> Comparison {
     let (train, test) = baseline::split_mod5(table);
     let gauss_rows = baseline::gaussian_test_loglik_rows(&train, &test);
+    let [full_rows, diagonal_rows] = mixture_rows(&train, &test);
+    let sum = |v: &[f64]| v.iter().sum::<f64>();
+    // The better of the two on these very rows.
+    let best_rows = if sum(&full_rows) >= sum(&diagonal_rows) {
+        &full_rows
+    } else {
+        &diagonal_rows
+    };
     let mut model_rows = vec![0.0; gauss_rows.len()];
     let mut d = 0.0;
     let mut model_per_dim = 0.0;
@@ -31,9 +64,7 @@ fn compare_seeds(
             seed: seed.unwrap_or(train_cfg.seed),
             ..train_cfg.clone()
         };
-        let mut trainer = Trainer::new(&train, LatentConfig::default(), cfg).unwrap();
-        trainer.fit().unwrap();
-        let model = trainer.into_model();
+        let model = default_fit(&train, cfg);
         let eval = model.evaluate(&test, EvalOptions::new(128, 11)).unwrap();
         d = eval.dims as f64;
         model_per_dim += eval.loglik_per_dim / seeds.len() as f64;
@@ -41,30 +72,54 @@ fn compare_seeds(
             *m += r / seeds.len() as f64;
         }
     }
-    let diff: Vec<f64> = model_rows
-        .iter()
-        .zip(&gauss_rows)
-        .map(|(m, g)| (m - g) / d)
-        .collect();
-    let n = diff.len() as f64;
-    let gain = diff.iter().sum::<f64>() / n;
-    let var = diff.iter().map(|x| (x - gain).powi(2)).sum::<f64>() / (n - 1.0);
+    let paired = |base: &[f64]| -> (f64, f64) {
+        let diff: Vec<f64> = model_rows
+            .iter()
+            .zip(base)
+            .map(|(m, g)| (m - g) / d)
+            .collect();
+        let n = diff.len() as f64;
+        let gain = diff.iter().sum::<f64>() / n;
+        let var = diff.iter().map(|x| (x - gain).powi(2)).sum::<f64>() / (n - 1.0);
+        (gain, (var / n).sqrt())
+    };
+    let n = gauss_rows.len() as f64;
+    let (gain, gain_se) = paired(&gauss_rows);
+    let (full_gain, full_se) = paired(&full_rows);
+    let (best_gain, best_se) = paired(best_rows);
     let c = Comparison {
         model: model_per_dim,
-        gaussian: gauss_rows.iter().sum::<f64>() / n / d,
+        gaussian: sum(&gauss_rows) / n / d,
         gain,
-        gain_se: (var / n).sqrt(),
+        gain_se,
+        full_mixture: sum(&full_rows) / n / d,
+        full_gain,
+        full_se,
+        best_mixture: sum(best_rows) / n / d,
+        best_gain,
+        best_se,
     };
     eprintln!("{c:?}");
     c
 }
 
+fn compare(table: &neural_sde::Table, train_cfg: TrainConfig) -> Comparison {
+    compare_seeds(table, train_cfg, &[None])
+}
+
 #[derive(Debug)]
+#[allow(dead_code)] // fields are read through Debug in failure messages
 struct Comparison {
     model: f64,
     gaussian: f64,
     gain: f64,
     gain_se: f64,
+    full_mixture: f64,
+    full_gain: f64,
+    full_se: f64,
+    best_mixture: f64,
+    best_gain: f64,
+    best_se: f64,
 }
 
 #[test]
@@ -88,6 +143,15 @@ fn iris_beats_full_covariance_gaussian() {
     let c = compare_seeds(&t, TrainConfig::default(), &[Some(0), Some(1), Some(2)]);
     assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
     assert!((c.model - c.gaussian - c.gain).abs() < 1e-9, "{c:?}");
+    // The family contains the full-covariance mixtures and the fit can start from the one BIC
+    // chooses (two components here, −0.444 per dimension, also the best mixture): not behind
+    // it by two standard errors. Beating it is the open target of the benchmarks document;
+    // with 30 held-out rows the gap measured is within its error.
+    assert!(c.full_gain > -2.0 * c.full_se, "{c:?}");
+    assert!(
+        (c.model - c.full_mixture - c.full_gain).abs() < 1e-9,
+        "{c:?}"
+    );
 }
 
 #[test]
@@ -113,6 +177,22 @@ fn red_wine_quality_beats_full_covariance_gaussian() {
     let c = compare(&t, cfg);
     assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
     assert!((c.model - c.gaussian - c.gain).abs() < 1e-9, "{c:?}");
+    // And the best mixture (five full-covariance components by BIC) by two standard errors.
+    assert!(c.best_gain > 2.0 * c.best_se, "{c:?}");
+}
+
+#[test]
+fn diabetes_beats_full_covariance_gaussian_and_keeps_up_with_the_best_mixture() {
+    // Diabetes (Efron et al. 2004) as linfa-datasets loads it (441 rows × 10). Its `sex`
+    // column takes two values, on which a mixture puts two near-point components: most of
+    // the mixtures' lead over the Gaussian. The default protocol starts from the
+    // full-covariance mixture BIC chooses and must not fall behind it by two standard errors
+    // (averaged over three seeds, as one fit on 88 held-out rows is noisy). The diagonal
+    // mixture scores higher still on these rows; the benchmarks document reports that gap.
+    let t = baseline::diabetes();
+    let c = compare_seeds(&t, TrainConfig::default(), &[Some(0), Some(1), Some(2)]);
+    assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
+    assert!(c.full_gain > -2.0 * c.full_se, "{c:?}");
 }
 
 #[test]
@@ -128,4 +208,9 @@ fn demo_table_beats_full_covariance_gaussian() {
     let c = compare(&t, cfg);
     assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
     assert!((c.model - c.gaussian - c.gain).abs() < 1e-9, "{c:?}");
+    // The mixture start brings the night-time spike of `light_klux` that the Gaussian start
+    // cannot reach (−2.87 per dimension before it): within 0.05 nats per dimension of the
+    // full-covariance mixture BIC chooses (−2.568, also the best mixture), which the full
+    // defaults beat in some seeds and trail in others (benchmarks document).
+    assert!(c.full_gain > -0.05, "{c:?}");
 }

@@ -210,6 +210,29 @@ impl MixtureModel {
         })
     }
 
+    /// Weights, means (`k × d`) and covariances (`k × d × d`) in the units of the table
+    /// fitted on (full covariances; a diagonal fit gives diagonal matrices).
+    pub(crate) fn in_table_units(&self) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
+        let d = self.columns.len();
+        let s = &self.scaler.scale;
+        let mut means = Vec::with_capacity(self.means.len());
+        let mut covs = Vec::with_capacity(self.components() * d * d);
+        for (m, l) in self
+            .means
+            .chunks_exact(d)
+            .zip(self.chol.chunks_exact(d * d))
+        {
+            means.extend(self.scaler.inverse(m));
+            for i in 0..d {
+                for j in 0..d {
+                    let c: f64 = (0..d).map(|k| l[i * d + k] * l[j * d + k]).sum();
+                    covs.push(c * s[i] * s[j]);
+                }
+            }
+        }
+        (self.weights.clone(), means, covs)
+    }
+
     /// The components' weights.
     pub fn weights(&self) -> &[f64] {
         &self.weights

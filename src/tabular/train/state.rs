@@ -41,6 +41,11 @@ pub struct TrainState {
     /// stored: then the configuration's epochs are used.
     #[serde(default)]
     pub planned_steps: Option<u64>,
+    /// Set when the start was the Gaussian mixture that BIC chose on the training rows
+    /// (the model's `noise_components` was not given): [`crate::Trainer::gaussian_start`] then
+    /// offers the fit from one Gaussian to compare with.
+    #[serde(default)]
+    pub mixture_by_bic: bool,
 }
 
 /// Summary returned by [`crate::Trainer::fit`].
