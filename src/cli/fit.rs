@@ -272,18 +272,7 @@ fn finish(
         }
     }
     let jac = trainer.model().scaler().log_jacobian();
-    let bar = if root {
-        let progress = super::progress::Progress::new(dims, jac, Some(a.time_budget));
-        let bar = progress.bar_clone();
-        trainer.add_observer(Box::new(progress));
-        Some(bar)
-    } else {
-        None
-    };
-    let outcome = trainer.fit();
-    if let Some(bar) = bar {
-        bar.finish_and_clear();
-    }
+    let outcome = fit_with_progress(trainer, root, dims, a.time_budget);
     let (mut report, failure) = match outcome {
         Ok(r) => (Some(r), None),
         // Keep what was learned: after a training failure the trainer holds the best weights.
@@ -348,6 +337,29 @@ fn finish(
     Ok(())
 }
 
+/// Trains `trainer`, showing a progress bar (against `budget` seconds) on process 0.
+fn fit_with_progress(
+    trainer: &mut Trainer,
+    root: bool,
+    dims: usize,
+    budget: f64,
+) -> neural_sde::Result<neural_sde::TrainReport> {
+    let jac = trainer.model().scaler().log_jacobian();
+    let bar = if root {
+        let progress = super::progress::Progress::new(dims, jac, Some(budget));
+        let bar = progress.bar_clone();
+        trainer.add_observer(Box::new(progress));
+        Some(bar)
+    } else {
+        None
+    };
+    let outcome = trainer.fit();
+    if let Some(bar) = bar {
+        bar.finish_and_clear();
+    }
+    outcome
+}
+
 /// Beside a fit that started from the Gaussian mixture BIC chose, trains the fit from one
 /// Gaussian within what is left of the time budget and keeps the model with the higher
 /// validation log-likelihood (see `Trainer::gaussian_start`); `report` becomes the kept
@@ -379,18 +391,7 @@ fn compare_starts(
         .set_time_budget(Some(left))
         .map_err(|e| group.settle(e))?;
     let jac = trainer.model().scaler().log_jacobian();
-    let bar = if root {
-        let progress = super::progress::Progress::new(dims, jac, Some(left));
-        let bar = progress.bar_clone();
-        other.add_observer(Box::new(progress));
-        Some(bar)
-    } else {
-        None
-    };
-    let outcome = other.fit();
-    if let Some(bar) = bar {
-        bar.finish_and_clear();
-    }
+    let outcome = fit_with_progress(&mut other, root, dims, left);
     let other_report = match outcome {
         Ok(r) => r,
         Err(neural_sde::Error::Training(why)) => {
@@ -468,19 +469,7 @@ fn refit(
         r.checkpoint_every(every, &a.out)
             .map_err(|e| group.settle(e))?;
     }
-    let jac = r.model().scaler().log_jacobian();
-    let bar = if root {
-        let progress = super::progress::Progress::new(dims, jac, Some(left));
-        let bar = progress.bar_clone();
-        r.add_observer(Box::new(progress));
-        Some(bar)
-    } else {
-        None
-    };
-    let outcome = r.fit();
-    if let Some(bar) = bar {
-        bar.finish_and_clear();
-    }
+    let outcome = fit_with_progress(&mut r, root, dims, left);
     let report = outcome.map_err(|e| group.settle(e))?;
     r.save(&a.out).map_err(|e| group.settle(e))?;
     if root {
