@@ -408,3 +408,33 @@ fn files_of_format_version_1_still_load_and_non_finite_weights_are_never_written
     assert!(matches!(e, Error::NonFinite { .. }), "{e}");
     assert!(!out.exists());
 }
+
+#[test]
+fn a_header_with_a_bad_noise_component_count_is_refused() {
+    // Zero components, more than the limit, and a count whose parameters the file lacks are
+    // errors that name what is wrong, never a panic or a huge allocation.
+    let t = table();
+    let (m, c) = cfg();
+    let m = LatentConfig {
+        noise_components: Some(1),
+        ..m
+    };
+    let tr = Trainer::new(&t, m, TrainConfig { epochs: 1, ..c }).unwrap();
+    let d = dir("noise");
+    let good = d.join("good.safetensors");
+    tr.save(&good).unwrap();
+    for (name, count, want) in [
+        ("zero", 0u64, "noise_components"),
+        ("huge", 1 << 40, "noise_components"),
+        ("absent", 3, "noise_"),
+    ] {
+        let p = d.join(format!("noise-{name}.safetensors"));
+        rewrite(&good, &p, |meta, _| {
+            let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+            c["header"]["model_config"]["noise_components"] = count.into();
+            meta.insert("neural-sde".into(), c.to_string());
+        });
+        let e = TabularModel::load(&p).unwrap_err().to_string();
+        assert!(e.contains(want), "{name}: {e}");
+    }
+}
