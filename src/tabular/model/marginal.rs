@@ -41,8 +41,8 @@ fn to_f64(s: &CpuStorage, l: &Layout) -> Result<Vec<f64>> {
     })
 }
 
-/// `Σ = P⁻¹ P⁻ᵀ` and `P⁻¹`.
-fn covariance(p: &[f64], d: usize) -> Result<(Vec<f64>, Vec<f64>)> {
+/// `Σ = P⁻¹ P⁻ᵀ` and `P⁻¹` from a lower-triangular precision factor `P` (`d × d`).
+pub(super) fn covariance(p: &[f64], d: usize) -> Result<(Vec<f64>, Vec<f64>)> {
     let Some(pinv) = lower_triangular_inverse(p, d) else {
         bail!("masked Gaussian: the precision factor is singular")
     };

@@ -136,17 +136,13 @@ impl NoiseMixture {
         let mut factors = Vec::with_capacity(m * d * d);
         let mut covariances = Vec::with_capacity(m * d * d);
         for pk in p.chunks_exact(d * d) {
-            let inv = crate::util::linalg::lower_triangular_inverse(pk, d).ok_or_else(|| {
-                Error::NonFinite {
-                    what: "observation noise mixture".into(),
-                    detail: "a component's precision factor is singular; retrain with a lower learning rate".into(),
-                }
+            let (cov, inv) = super::marginal::covariance(pk, d).map_err(|_| Error::NonFinite {
+                what: "observation noise mixture".into(),
+                detail:
+                    "a component's precision factor is singular; retrain with a lower learning rate"
+                        .into(),
             })?;
-            for i in 0..d {
-                for j in 0..d {
-                    covariances.push((0..d).map(|k| inv[i * d + k] * inv[j * d + k]).sum());
-                }
-            }
+            covariances.extend(cov);
             factors.extend(inv);
         }
         Ok(MixtureValues {
