@@ -438,3 +438,60 @@ fn a_header_with_a_bad_noise_component_count_is_refused() {
         assert!(e.contains(want), "{name}: {e}");
     }
 }
+
+#[test]
+fn a_hostile_mixture_learning_rate_scale_is_refused_and_an_older_checkpoint_resumes_at_one() {
+    // The factor on a mixture fit's learning rate comes from the file on resume: out of
+    // (0, 1] it is an error naming the field; a header written before the field existed
+    // resumes at the factor it was trained with, 1.
+    let t = table();
+    let (m, c) = cfg();
+    let m = LatentConfig {
+        noise_components: Some(2),
+        ..m
+    };
+    let tr = Trainer::new(&t, m, TrainConfig { epochs: 1, ..c }).unwrap();
+    let d = dir("mixture-rate");
+    let good = d.join("good.safetensors");
+    tr.save(&good).unwrap();
+    for (name, value, want) in [
+        (
+            "zero",
+            serde_json::json!(0.0),
+            "mixture_learning_rate_scale",
+        ),
+        (
+            "big",
+            serde_json::json!(1e300),
+            "mixture_learning_rate_scale",
+        ),
+        ("text", serde_json::json!("fast"), "header is not valid"),
+    ] {
+        let p = d.join(format!("rate-{name}.safetensors"));
+        rewrite(&good, &p, |meta, _| {
+            let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+            c["header"]["train_config"]["mixture_learning_rate_scale"] = value.clone();
+            meta.insert("neural-sde".into(), c.to_string());
+        });
+        let e = Trainer::resume(&p, &t).unwrap_err().to_string();
+        assert!(e.contains(want), "{name}: {e}");
+    }
+    let p = d.join("rate-absent.safetensors");
+    rewrite(&good, &p, |meta, _| {
+        let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+        c["header"]["train_config"]
+            .as_object_mut()
+            .unwrap()
+            .remove("mixture_learning_rate_scale");
+        meta.insert("neural-sde".into(), c.to_string());
+    });
+    let resumed = Trainer::resume(&p, &t).unwrap();
+    assert_eq!(resumed.config().mixture_learning_rate_scale, 1.0);
+    assert_eq!(
+        Trainer::resume(&good, &t)
+            .unwrap()
+            .config()
+            .mixture_learning_rate_scale,
+        1.0 / 3.0
+    );
+}

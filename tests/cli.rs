@@ -141,6 +141,8 @@ fn bad_inputs_exit_2_with_one_line_and_write_nothing() {
         ("--epochs", "0"),
         ("--learning-rate", "-1"),
         ("--validation-fraction", "1.5"),
+        ("--mixture-learning-rate-scale", "1.5"),
+        ("--mixture-learning-rate-scale", "0"),
         ("--steps", "abc"),
         ("--time-budget", "0"),
     ] {

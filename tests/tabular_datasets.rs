@@ -182,18 +182,23 @@ fn red_wine_quality_beats_full_covariance_gaussian() {
 }
 
 #[test]
-fn diabetes_beats_full_covariance_gaussian_and_keeps_close_to_the_best_mixture() {
+fn diabetes_beats_full_covariance_gaussian_and_the_best_mixture() {
     // Diabetes (Efron et al. 2004) as linfa-datasets loads it (441 rows × 10). Its `sex`
     // column takes two values, on which a mixture puts near-point components: most of the
     // mixtures' lead over the Gaussian (2.020 per dimension; the full-covariance mixture BIC
     // chooses, four components, 2.780, is the best). The default protocol starts from such
-    // a mixture; averaged over three seeds (one fit on 88 held-out rows is noisy) it stays
-    // within 0.1 nats per dimension of it (measured 0.064 ± 0.034 behind): beating it is the
-    // open target of the benchmarks document.
+    // a mixture and trains it at a third of the learning rate; averaged over three seeds (one
+    // fit on 88 held-out rows is noisy) it is ahead of the mixture (measured +0.071 ± 0.036
+    // per dimension: 1.98 standard errors, just short of the benchmarks document's target of
+    // two).
     let t = baseline::diabetes();
     let c = compare_seeds(&t, TrainConfig::default(), &[Some(0), Some(1), Some(2)]);
     assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
-    assert!(c.full_gain > -0.1, "{c:?}");
+    assert!(c.full_gain > 0.0, "{c:?}");
+    assert!(
+        (c.model - c.full_mixture - c.full_gain).abs() < 1e-9,
+        "{c:?}"
+    );
 }
 
 #[test]
@@ -211,7 +216,8 @@ fn demo_table_beats_full_covariance_gaussian() {
     assert!((c.model - c.gaussian - c.gain).abs() < 1e-9, "{c:?}");
     // The mixture start brings the night-time spike of `light_klux` that the Gaussian start
     // cannot reach (−2.87 per dimension before it): within 0.05 nats per dimension of the
-    // full-covariance mixture BIC chooses (−2.568, also the best mixture), which the full
-    // defaults beat in some seeds and trail in others (benchmarks document).
+    // full-covariance mixture BIC chooses (−2.568, also the best mixture; measured here
+    // +0.013 ± 0.008 ahead of it), which the full defaults beat in some seeds and trail in
+    // others (benchmarks document).
     assert!(c.full_gain > -0.05, "{c:?}");
 }

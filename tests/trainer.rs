@@ -85,6 +85,54 @@ fn history_and_observer() {
     assert_eq!(&back, h);
 }
 
+#[test]
+fn a_mixture_start_trains_at_the_scaled_learning_rate() {
+    // Same warm-up as above (peak · step / 50, common practice, no source), times
+    // `mixture_learning_rate_scale` when the noise is a mixture of several components, and
+    // not when it is one Gaussian.
+    let t = table(200);
+    let (m, c) = small();
+    let peak = c.optimizer.learning_rate();
+    for (components, factor) in [(1, 1.0), (2, c.mixture_learning_rate_scale)] {
+        let m = LatentConfig {
+            noise_components: Some(components),
+            ..m.clone()
+        };
+        let mut tr = Trainer::new(&t, m, c.clone()).unwrap();
+        tr.fit().unwrap();
+        for r in &tr.history().epochs {
+            let want = factor * peak * r.step as f64 / 50.0;
+            assert!((r.learning_rate - want).abs() < 1e-12 * want, "{r:?}");
+        }
+    }
+    assert_eq!(c.mixture_learning_rate_scale, 1.0 / 3.0);
+    for bad in [0.0, -1.0, 1.5, f64::NAN] {
+        let c = TrainConfig {
+            mixture_learning_rate_scale: bad,
+            ..c.clone()
+        };
+        let e = Trainer::new(&t, LatentConfig::default(), c).unwrap_err();
+        assert!(
+            matches!(
+                e,
+                Error::InvalidConfig {
+                    field: "mixture_learning_rate_scale",
+                    ..
+                }
+            ),
+            "{e}"
+        );
+    }
+    // A configuration saved without the field (an older checkpoint) reads as the factor it
+    // was trained with, 1.
+    let mut json = serde_json::to_value(&c).unwrap();
+    json.as_object_mut()
+        .unwrap()
+        .remove("mixture_learning_rate_scale");
+    let old: TrainConfig = serde_json::from_value(json).unwrap();
+    assert_eq!(old.mixture_learning_rate_scale, 1.0);
+}
+
 struct Failing;
 impl Observer for Failing {
     fn on_epoch(&mut self, _r: &EpochRecord) -> Result<ControlFlow<()>> {

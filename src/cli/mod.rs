@@ -238,6 +238,16 @@ pub fn positive_f64(s: &str) -> Result<f64, String> {
     }
 }
 
+/// A number in (0, 1].
+pub fn scale_factor(s: &str) -> Result<f64, String> {
+    let v: f64 = s.parse().map_err(|_| format!("'{s}' is not a number"))?;
+    if v > 0.0 && v <= 1.0 {
+        Ok(v)
+    } else {
+        Err(format!("{s} must lie in (0, 1]"))
+    }
+}
+
 /// An integer of at least 1.
 pub fn positive_usize(s: &str) -> Result<usize, String> {
     let v: usize = s

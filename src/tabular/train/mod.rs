@@ -621,6 +621,16 @@ impl Trainer {
         Ok(Some(t))
     }
 
+    /// [`TrainConfig::mixture_learning_rate_scale`] when the observation noise is a mixture
+    /// of several components, else 1.
+    fn mixture_scale(&self) -> f64 {
+        if self.model.model.config().noise_components.unwrap_or(1) > 1 {
+            self.train_cfg.mixture_learning_rate_scale
+        } else {
+            1.0
+        }
+    }
+
     /// Whether training ran its whole plan (not a pause set by [`Trainer::set_epochs`]) or
     /// stopped early.
     fn ended_well(&self) -> bool {
@@ -924,6 +934,7 @@ impl Trainer {
             return self.end_epoch().map(Some);
         }
         let planned = self.planned_steps();
+        let mixture_scale = self.mixture_scale();
         let run = self.epoch_run.as_mut().ok_or_else(no_epoch)?;
         let batch = run.next;
         let batches = run.minibatches.len();
@@ -933,7 +944,8 @@ impl Trainer {
             .train_cfg
             .optimizer
             .learning_rate_at(self.state.step, planned)
-            * self.state.recovery.lr_scale;
+            * self.state.recovery.lr_scale
+            * mixture_scale;
         run.lr = lr;
         self.state.step = self.state.step.saturating_add(1);
         let model = &self.model.model;
