@@ -409,30 +409,47 @@ fn files_of_format_version_1_still_load_and_non_finite_weights_are_never_written
     assert!(!out.exists());
 }
 
+/// Rewrites the checkpoint `src` to `dst` with `edit` applied to its JSON header.
+fn rewrite_header(
+    src: &std::path::Path,
+    dst: &std::path::Path,
+    edit: impl Fn(&mut serde_json::Value),
+) {
+    rewrite(src, dst, |meta, _| {
+        let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+        edit(&mut c["header"]);
+        meta.insert("neural-sde".into(), c.to_string());
+    });
+}
+
+/// The test table and a checkpoint of a one-epoch fit with `components` noise components,
+/// saved in a fresh folder named after `name`.
+fn one_epoch_checkpoint(components: usize, name: &str) -> (Table, PathBuf) {
+    let t = table();
+    let (m, c) = cfg();
+    let m = LatentConfig {
+        noise_components: Some(components),
+        ..m
+    };
+    let tr = Trainer::new(&t, m, TrainConfig { epochs: 1, ..c }).unwrap();
+    let good = dir(name).join("good.safetensors");
+    tr.save(&good).unwrap();
+    (t, good)
+}
+
 #[test]
 fn a_header_with_a_bad_noise_component_count_is_refused() {
     // Zero components, more than the limit, and a count whose parameters the file lacks are
     // errors that name what is wrong, never a panic or a huge allocation.
-    let t = table();
-    let (m, c) = cfg();
-    let m = LatentConfig {
-        noise_components: Some(1),
-        ..m
-    };
-    let tr = Trainer::new(&t, m, TrainConfig { epochs: 1, ..c }).unwrap();
-    let d = dir("noise");
-    let good = d.join("good.safetensors");
-    tr.save(&good).unwrap();
+    let (_, good) = one_epoch_checkpoint(1, "noise");
     for (name, count, want) in [
         ("zero", 0u64, "noise_components"),
         ("huge", 1 << 40, "noise_components"),
         ("absent", 3, "noise_"),
     ] {
-        let p = d.join(format!("noise-{name}.safetensors"));
-        rewrite(&good, &p, |meta, _| {
-            let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
-            c["header"]["model_config"]["noise_components"] = count.into();
-            meta.insert("neural-sde".into(), c.to_string());
+        let p = good.with_file_name(format!("noise-{name}.safetensors"));
+        rewrite_header(&good, &p, |h| {
+            h["model_config"]["noise_components"] = count.into();
         });
         let e = TabularModel::load(&p).unwrap_err().to_string();
         assert!(e.contains(want), "{name}: {e}");
@@ -444,16 +461,7 @@ fn a_hostile_mixture_learning_rate_scale_is_refused_and_an_older_checkpoint_resu
     // The factor on a mixture fit's learning rate comes from the file on resume: out of
     // (0, 1] it is an error naming the field; a header written before the field existed
     // resumes at the factor it was trained with, 1.
-    let t = table();
-    let (m, c) = cfg();
-    let m = LatentConfig {
-        noise_components: Some(2),
-        ..m
-    };
-    let tr = Trainer::new(&t, m, TrainConfig { epochs: 1, ..c }).unwrap();
-    let d = dir("mixture-rate");
-    let good = d.join("good.safetensors");
-    tr.save(&good).unwrap();
+    let (t, good) = one_epoch_checkpoint(2, "mixture-rate");
     for (name, value, want) in [
         (
             "zero",
@@ -467,23 +475,19 @@ fn a_hostile_mixture_learning_rate_scale_is_refused_and_an_older_checkpoint_resu
         ),
         ("text", serde_json::json!("fast"), "header is not valid"),
     ] {
-        let p = d.join(format!("rate-{name}.safetensors"));
-        rewrite(&good, &p, |meta, _| {
-            let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
-            c["header"]["train_config"]["mixture_learning_rate_scale"] = value.clone();
-            meta.insert("neural-sde".into(), c.to_string());
+        let p = good.with_file_name(format!("rate-{name}.safetensors"));
+        rewrite_header(&good, &p, |h| {
+            h["train_config"]["mixture_learning_rate_scale"] = value.clone();
         });
         let e = Trainer::resume(&p, &t).unwrap_err().to_string();
         assert!(e.contains(want), "{name}: {e}");
     }
-    let p = d.join("rate-absent.safetensors");
-    rewrite(&good, &p, |meta, _| {
-        let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
-        c["header"]["train_config"]
+    let p = good.with_file_name("rate-absent.safetensors");
+    rewrite_header(&good, &p, |h| {
+        h["train_config"]
             .as_object_mut()
             .unwrap()
             .remove("mixture_learning_rate_scale");
-        meta.insert("neural-sde".into(), c.to_string());
     });
     let resumed = Trainer::resume(&p, &t).unwrap();
     assert_eq!(resumed.config().mixture_learning_rate_scale, 1.0);

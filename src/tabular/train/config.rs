@@ -62,7 +62,7 @@ pub struct TrainConfig {
     /// components (see [`crate::LatentConfig::noise_components`]). Adam moves every weight by
     /// about the learning rate whatever its scale, which at the full rate disturbs the start's
     /// near-point components; measured on the crate's open tables a third of the rate gained
-    /// 0.19 nats per dimension on diabetes and changed the others by at most 0.001 (see the
+    /// 0.155 nats per dimension on diabetes and changed the others by at most 0.001 (see the
     /// benchmarks document). A configuration saved without this field (an older checkpoint)
     /// reads as 1, the factor it was trained with.
     #[serde(default = "one")]
