@@ -499,3 +499,73 @@ fn a_hostile_mixture_learning_rate_scale_is_refused_and_an_older_checkpoint_resu
         1.0 / 3.0
     );
 }
+
+#[test]
+fn the_weight_average_is_checked_on_resume_and_an_older_checkpoint_resumes_without_one() {
+    // The running average of the weights is training state like the optimiser's moments:
+    // a file with some of its tensors missing, or one of the wrong shape, is refused with
+    // an error naming it; a file written before the average existed (no `average.*`
+    // tensors, no `weight_average` in the header) resumes without averaging, as it trained.
+    let t = table();
+    let (m, c) = cfg();
+    let mut tr = Trainer::new(&t, m, TrainConfig { epochs: 2, ..c }).unwrap();
+    tr.run_epoch().unwrap();
+    let d = dir("average");
+    let good = d.join("good.safetensors");
+    tr.save(&good).unwrap();
+    let names = |p: &std::path::Path| -> Vec<String> {
+        let bytes = std::fs::read(p).unwrap();
+        let st = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+        st.names().into_iter().map(str::to_string).collect()
+    };
+    let averaged = names(&good)
+        .into_iter()
+        .filter(|n| n.starts_with("average."))
+        .count();
+    let vars = sorted_vars(tr.model().latent().varmap()).unwrap().len();
+    assert_eq!(averaged, vars, "one averaged tensor per weight");
+
+    let p = d.join("some-missing.safetensors");
+    rewrite(&good, &p, |_, ts| {
+        ts.retain(|(n, _)| n != "average.prior.layer0.weight")
+    });
+    let e = Trainer::resume(&p, &t).unwrap_err().to_string();
+    assert!(e.contains("some average.* weights missing"), "{e}");
+
+    let p = d.join("average-shape.safetensors");
+    rewrite(&good, &p, |_, ts| {
+        let i = ts
+            .iter()
+            .position(|(n, _)| n == "average.decoder.linear.bias")
+            .unwrap();
+        ts[i].1 = candle_core::Tensor::zeros(5, candle_core::DType::F32, &candle_core::Device::Cpu)
+            .unwrap();
+    });
+    let e = Trainer::resume(&p, &t).unwrap_err().to_string();
+    assert!(
+        e.contains("average.decoder.linear.bias") && e.contains("[5]"),
+        "{e}"
+    );
+
+    let p = d.join("older.safetensors");
+    rewrite(&good, &p, |meta, ts| {
+        ts.retain(|(n, _)| !n.starts_with("average."));
+        let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+        c["header"]["train_config"]
+            .as_object_mut()
+            .unwrap()
+            .remove("weight_average");
+        meta.insert("neural-sde".into(), c.to_string());
+    });
+    let mut older = Trainer::resume(&p, &t).unwrap();
+    assert_eq!(older.config().weight_average, 0.0);
+    assert_eq!(
+        Trainer::resume(&good, &t).unwrap().config().weight_average,
+        0.99
+    );
+    // It trains on without an average, and its checkpoints hold none.
+    older.run_epoch().unwrap();
+    let out = d.join("older-after.safetensors");
+    older.save(&out).unwrap();
+    assert!(!names(&out).iter().any(|n| n.starts_with("average.")));
+}

@@ -76,7 +76,7 @@ fn weight_difference(a: &Path, b: &Path) -> f64 {
     let (ta, tb) = (tensors(a), tensors(b));
     let (mut diff, mut scale) = (0.0f64, 0.0f64);
     let weights = |n: &&String| {
-        !["optim.", "best.", "last."]
+        !["optim.", "best.", "last.", "average."]
             .iter()
             .any(|p| n.starts_with(p))
     };

@@ -78,6 +78,10 @@ pub struct FitArgs {
     /// narrow components (measured in the benchmarks document) [default: 1/3].
     #[arg(long, default_value_t = 1.0 / 3.0, hide_default_value = true, value_parser = scale_factor, allow_negative_numbers = true)]
     mixture_learning_rate_scale: f64,
+    /// Decay, in [0, 1), of the running average of the weights that validation scores and
+    /// the fit keeps (0: no average; 0.99 averages over about a hundred steps).
+    #[arg(long, default_value_t = 0.99, value_parser = fraction, allow_negative_numbers = true)]
+    weight_average: f64,
     /// Seed of every random draw (split, minibatches, weights, noise).
     #[arg(long, default_value_t = 0)]
     seed: u64,
@@ -241,6 +245,7 @@ fn prepare(
                 seed: a.seed,
                 refit: a.refit,
                 mixture_learning_rate_scale: a.mixture_learning_rate_scale,
+                weight_average: a.weight_average,
                 validation_fraction: a.validation_fraction,
                 ..TrainConfig::default()
             };

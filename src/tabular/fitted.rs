@@ -31,6 +31,11 @@ pub struct TabularModel {
     pub(crate) coder: RowCoder,
 }
 
+/// Name prefixes of the training state a checkpoint holds beside the model's weights:
+/// optimiser moments, best weights, the weights training had reached and the running
+/// average of the weights.
+pub(crate) const TRAINING_PREFIXES: [&str; 4] = ["optim.", "best.", "last.", "average."];
+
 impl TabularModel {
     /// The latent model (standardised units).
     pub fn latent(&self) -> &LatentModel {
@@ -383,8 +388,9 @@ impl TabularModel {
 
     /// Reads a checkpoint: the model with its weights, and every tensor of the file (the
     /// trainer takes its own from them). Every tensor must belong to the model, as a weight,
-    /// an optimiser moment (`optim.m.`, `optim.v.`), a best weight (`best.`) or the weights
-    /// training had reached when they differ from the model's (`last.`). Also returns the
+    /// an optimiser moment (`optim.m.`, `optim.v.`), a best weight (`best.`), the weights
+    /// training had reached when they differ from the model's (`last.`) or the running
+    /// average of the weights (`average.`; see [`TRAINING_PREFIXES`]). Also returns the
     /// header's timing, whose training seconds the trainer keeps.
     pub(crate) fn read(
         path: &Path,
@@ -430,7 +436,7 @@ impl TabularModel {
                 path,
                 &bytes,
                 header.model_config.parameter_count(layout),
-                &["optim.", "best.", "last."],
+                &TRAINING_PREFIXES,
             )?;
         }
         let file = crate::nn::checkpoint::read_tensors(
@@ -444,11 +450,9 @@ impl TabularModel {
         crate::nn::checkpoint::load_vars(path, model.varmap(), &file)?;
         let vars = sorted_vars(model.varmap())?;
         for name in file.keys() {
-            let base = name
-                .strip_prefix("optim.m.")
-                .or_else(|| name.strip_prefix("optim.v."))
-                .or_else(|| name.strip_prefix("best."))
-                .or_else(|| name.strip_prefix("last."))
+            let base = ["optim.m.", "optim.v.", "best.", "last.", "average."]
+                .iter()
+                .find_map(|p| name.strip_prefix(p))
                 .unwrap_or(name);
             if !vars.iter().any(|(n, _)| n == base) {
                 return Err(bad(format!(

@@ -55,7 +55,9 @@ pub fn inspect_checkpoint(path: impl AsRef<Path>) -> Result<CheckpointSummary> {
     let parameters = crate::nn::checkpoint::tensor_sizes(path, &bytes)?
         .into_iter()
         .filter(|(n, _)| {
-            !n.starts_with("optim.") && !n.starts_with("best.") && !n.starts_with("last.")
+            !crate::tabular::fitted::TRAINING_PREFIXES
+                .iter()
+                .any(|p| n.starts_with(p))
         })
         .map(|(_, s)| s)
         .sum();

@@ -67,6 +67,16 @@ pub struct TrainConfig {
     /// reads as 1, the factor it was trained with.
     #[serde(default = "one")]
     pub mixture_learning_rate_scale: f64,
+    /// Decay `β` of the exponential moving average of the weights, in `[0, 1)`: after each
+    /// step the average moves a share `1 − β` towards the current weights, and validation,
+    /// early stopping and the model kept use the average (training continues from the
+    /// current weights). 0 keeps the current weights, as a configuration saved without this
+    /// field (an older checkpoint) reads. The default 0.99 averages over about a hundred
+    /// steps (two epochs of a small table); measured on the crate's open tables it gained
+    /// 0.075 nats per dimension on diabetes over no average and moved the others by at most
+    /// 0.005 (see the benchmarks document).
+    #[serde(default)]
+    pub weight_average: f64,
 }
 
 fn one() -> f64 {
@@ -91,6 +101,7 @@ impl Default for TrainConfig {
             seed: 0,
             refit: false,
             mixture_learning_rate_scale: 1.0 / 3.0,
+            weight_average: 0.99,
         }
     }
 }
@@ -185,6 +196,13 @@ impl TrainConfig {
                 "mixture_learning_rate_scale",
                 self.mixture_learning_rate_scale,
                 "must lie in (0, 1]",
+            ));
+        }
+        if !(0.0..1.0).contains(&self.weight_average) {
+            return Err(Error::config(
+                "weight_average",
+                self.weight_average,
+                "must lie in [0, 1) (0: no average)",
             ));
         }
         if let Some(t) = self.time_budget_secs {

@@ -21,6 +21,7 @@ use rand::seq::SliceRandom;
 
 use crate::collective::{check_group, on_root, share, Collective, SingleProcess};
 use crate::error::{Error, Result};
+use crate::nn::average::WeightAverage;
 use crate::nn::descent::group_gradient_step;
 use crate::nn::optim::AdamW;
 use crate::nn::params::sorted_vars;
@@ -48,6 +49,9 @@ struct EpochRun {
     minibatches: Vec<Vec<usize>>,
     next: usize,
     good: GoodPoint,
+    /// The weight average at the epoch's start, which non-finite steps go back to with
+    /// `good`.
+    good_average: WeightAverage,
     sums: Sums,
     started: Instant,
     lr: f64,
@@ -206,6 +210,8 @@ pub struct Trainer {
     group: Box<dyn Collective>,
     state: TrainState,
     best: Snapshot,
+    /// The running average of the weights that validation scores and `best` copies.
+    average: WeightAverage,
     observers: Vec<Box<dyn Observer>>,
     /// Started when the trainer is made and at each [`Trainer::fit`]: the time budget's clock.
     clock: Instant,
@@ -380,6 +386,7 @@ impl Trainer {
                 },
                 coder,
             },
+            average: WeightAverage::new(train_cfg.weight_average),
             train_cfg,
             train_rows,
             val_rows,
@@ -492,13 +499,18 @@ impl Trainer {
         let mut moments = std::collections::HashMap::new();
         let mut best = Vec::with_capacity(vars.len());
         let mut last = Vec::new();
+        let mut average = Vec::new();
         for (name, var) in &vars {
             for p in ["m", "v"] {
                 if let Some(t) = file.remove(&format!("optim.{p}.{name}")) {
                     moments.insert(format!("{p}.{name}"), t);
                 }
             }
-            for (prefix, into) in [("best", &mut best), ("last", &mut last)] {
+            for (prefix, into) in [
+                ("best", &mut best),
+                ("last", &mut last),
+                ("average", &mut average),
+            ] {
                 if let Some(t) = file.remove(&format!("{prefix}.{name}")) {
                     if t.dims() != var.dims() {
                         return Err(Error::Checkpoint {
@@ -514,11 +526,15 @@ impl Trainer {
                 }
             }
         }
-        if !last.is_empty() && last.len() != vars.len() {
-            return Err(Error::Checkpoint {
-                path: path.to_path_buf(),
-                reason: "the training state is incomplete (some last.* weights missing)".into(),
-            });
+        for (prefix, got) in [("last", &last), ("average", &average)] {
+            if !got.is_empty() && got.len() != vars.len() {
+                return Err(Error::Checkpoint {
+                    path: path.to_path_buf(),
+                    reason: format!(
+                        "the training state is incomplete (some {prefix}.* weights missing)"
+                    ),
+                });
+            }
         }
         if moments.len() != 2 * vars.len() || best.len() != vars.len() {
             return Err(Error::Checkpoint {
@@ -563,6 +579,10 @@ impl Trainer {
         optimizer.load_state(&moments, optimizer_steps)?;
         Ok(Self {
             model,
+            average: WeightAverage::from_weights(
+                train_cfg.weight_average,
+                (!average.is_empty()).then_some(average),
+            ),
             train_cfg,
             train_rows,
             val_rows,
@@ -979,6 +999,7 @@ impl Trainer {
         .map(|(_, f, stats)| (FreeEnergyValues::from_parts(&f), stats));
         match outcome {
             Ok((v, stats)) => {
+                self.average.update(self.model.model.varmap())?;
                 run.sums.add(&v, stats.grad_norm);
                 let info = StepInfo {
                     epoch: self.state.epoch.saturating_add(1),
@@ -1002,6 +1023,7 @@ impl Trainer {
                     self.train_cfg.max_failures,
                     (&what, &detail),
                 );
+                self.average = run.good_average.clone();
                 if let Err(e) = recovered {
                     self.epoch_run = None;
                     self.restore_best()?;
@@ -1042,6 +1064,7 @@ impl Trainer {
             minibatches,
             next: 0,
             good: GoodPoint::take(self.model.model.varmap(), &self.optimizer)?,
+            good_average: self.average.clone(),
             sums: Sums::default(),
             started: Instant::now(),
             lr: self.optimizer.learning_rate(),
@@ -1054,18 +1077,28 @@ impl Trainer {
         let run = self.epoch_run.take().ok_or_else(no_epoch)?;
         self.state.epoch = self.state.epoch.saturating_add(1);
         let train_elbo = run.sums.mean_elbo();
-        let val_elbo = if self.val_rows.is_empty() {
-            None
-        } else {
-            Some(self.elbo_of(&self.val_rows, &[])?)
-        };
-        let score = val_elbo.unwrap_or(train_elbo);
+        // Validation scores the averaged weights, and they are what `best` keeps.
+        let varmap = self.model.model.varmap();
+        let (val_elbo, best) = self.average.with_average(varmap, || {
+            let val_elbo = if self.val_rows.is_empty() {
+                None
+            } else {
+                Some(self.elbo_of(&self.val_rows, &[])?)
+            };
+            let score = val_elbo.unwrap_or(train_elbo);
+            let best = if StopRule(&self.train_cfg).improves(&self.state, score) {
+                Some((score, snapshot(varmap)?))
+            } else {
+                None
+            };
+            Ok((val_elbo, best))
+        })?;
         let rule = StopRule(&self.train_cfg);
-        if rule.improves(&self.state, score) {
+        if let Some((score, weights)) = best {
             self.state.best_elbo = Some(score);
             self.state.best_epoch = self.state.epoch;
             self.state.epochs_since_best = 0;
-            self.best = snapshot(self.model.model.varmap())?;
+            self.best = weights;
         } else {
             self.state.epochs_since_best = self.state.epochs_since_best.saturating_add(1);
         }
@@ -1121,7 +1154,10 @@ impl Trainer {
         while self.state.finished.is_none() {
             self.step()?;
         }
-        if self.last.is_none() && self.state.best_epoch != self.state.epoch {
+        // The best weights differ from the ones training reached unless the last epoch was
+        // the best and no average stands in for its weights.
+        let differ = self.state.best_epoch != self.state.epoch || self.average.weights().is_some();
+        if self.last.is_none() && differ {
             self.last = Some(snapshot(self.model.model.varmap())?);
         }
         self.restore_best()?;
@@ -1179,6 +1215,9 @@ impl Trainer {
         }
         for (n, b) in self.last.iter().flatten() {
             tensors.push((format!("last.{n}"), b.clone()));
+        }
+        for (n, b) in self.average.weights().into_iter().flatten() {
+            tensors.push((format!("average.{n}"), b.clone()));
         }
         let mut model = self.model.header();
         let mut state = self.state.clone();
