@@ -143,6 +143,8 @@ fn bad_inputs_exit_2_with_one_line_and_write_nothing() {
         ("--validation-fraction", "1.5"),
         ("--mixture-learning-rate-scale", "1.5"),
         ("--mixture-learning-rate-scale", "0"),
+        ("--weight-average", "1"),
+        ("--weight-average", "-0.5"),
         ("--steps", "abc"),
         ("--time-budget", "0"),
     ] {
