@@ -17,7 +17,9 @@ pub struct EpochRecord {
     /// before its first step; stored as `null`).
     #[serde(with = "crate::util::text::nan_as_null")]
     pub train_elbo: f64,
-    /// Validation ELBO per row (`None` without validation rows).
+    /// Validation ELBO per row of the running average of the weights
+    /// ([`crate::TrainConfig::weight_average`]; the current weights when it is 0), at the
+    /// end of the epoch (`None` without validation rows).
     pub val_elbo: Option<f64>,
     /// Mean control cost per row (training).
     pub control_cost: f64,
