@@ -503,8 +503,8 @@ fn a_hostile_mixture_learning_rate_scale_is_refused_and_an_older_checkpoint_resu
 #[test]
 fn the_weight_average_is_checked_on_resume_and_an_older_checkpoint_resumes_without_one() {
     // The running average of the weights is training state like the optimiser's moments:
-    // a file with some of its tensors missing, or one of the wrong shape, is refused with
-    // an error naming it; a file written before the average existed (no `average.*`
+    // a file with some of its tensors missing, one of the wrong shape, or averaged weights
+    // beside a decay of 0, is refused with an error naming it; a file written before the average existed (no `average.*`
     // tensors, no `weight_average` in the header) resumes without averaging, as it trained.
     let t = table();
     let (m, c) = cfg();
@@ -546,6 +546,16 @@ fn the_weight_average_is_checked_on_resume_and_an_older_checkpoint_resumes_witho
         e.contains("average.decoder.linear.bias") && e.contains("[5]"),
         "{e}"
     );
+
+    // Averaged weights with a decay of 0, which never updates them: refused.
+    let p = d.join("stale.safetensors");
+    rewrite(&good, &p, |meta, _| {
+        let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+        c["header"]["train_config"]["weight_average"] = 0.0.into();
+        meta.insert("neural-sde".into(), c.to_string());
+    });
+    let e = Trainer::resume(&p, &t).unwrap_err().to_string();
+    assert!(e.contains("weight_average 0"), "{e}");
 
     let p = d.join("older.safetensors");
     rewrite(&good, &p, |meta, ts| {

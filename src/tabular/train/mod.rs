@@ -526,6 +526,13 @@ impl Trainer {
                 }
             }
         }
+        // With a decay of 0 the trainer keeps no average and would never update a stored
+        // one, so validation would score stale weights.
+        if !average.is_empty() && train_cfg.weight_average == 0.0 {
+            return Err(invalid(
+                "average.* weights stored with weight_average 0".into(),
+            ));
+        }
         for (prefix, got) in [("last", &last), ("average", &average)] {
             if !got.is_empty() && got.len() != vars.len() {
                 return Err(Error::Checkpoint {
