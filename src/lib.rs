@@ -59,7 +59,9 @@
 //! Tables may have categorical columns and missing cells ([`Table::from_csv_typed`],
 //! [`ColumnRules`], [`RowLayout`]); [`TabularModel::impute`] fills missing cells and
 //! [`TabularModel::generate_given`] draws rows under conditions; [`compare_samples`] measures
-//! generated rows against data.
+//! generated rows against data. [`Ensemble`] combines several fitted models of one table
+//! (fits of different seeds, say) as the mixture of their densities, and evaluates and
+//! generates like one model.
 //!
 //! ## Speed: the fused kernel
 //!
@@ -118,6 +120,7 @@ pub use tabular::compare::{compare_samples, ColumnComparison, CompareOptions, Sa
 #[cfg(feature = "csv")]
 pub use tabular::csv_io::HeaderLine;
 pub use tabular::demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
+pub use tabular::ensemble::Ensemble;
 pub use tabular::evaluation::{EvalOptions, Evaluation};
 pub use tabular::fitted::TabularModel;
 pub use tabular::impute::{CellEstimate, Imputation, ImputeOptions};

@@ -180,3 +180,192 @@ fn initial_model_is_the_gaussian_fit_and_its_control_is_near_optimal() {
         / 50.0;
     assert_rel("model marginal vs ML Gaussian", exact, ml, 1e-4);
 }
+
+/// The log-density of the maximum-likelihood Gaussian of `t`'s rows (mean and covariance
+/// with divisor n), by Cholesky factors from nalgebra (`support/dense.rs`).
+fn ml_gaussian_logpdf(t: &Table) -> impl Fn(&[f64]) -> f64 {
+    let (d, n) = (t.n_cols(), t.n_rows() as f64);
+    let mean: Vec<f64> = (0..d)
+        .map(|j| t.column(j).iter().sum::<f64>() / n)
+        .collect();
+    let mut cov = vec![0.0; d * d];
+    for i in 0..t.n_rows() {
+        let r = t.row(i);
+        for a in 0..d {
+            for b in 0..d {
+                cov[a * d + b] += (r[a] - mean[a]) * (r[b] - mean[b]) / n;
+            }
+        }
+    }
+    let l = linalg::cholesky(&cov, d).unwrap();
+    let prec = linalg::cholesky_inverse(&l, d);
+    let log_det = linalg::log_det_from_cholesky(&l, d);
+    move |y: &[f64]| {
+        let z: Vec<f64> = (0..d).map(|j| y[j] - mean[j]).collect();
+        let q: f64 = (0..d)
+            .flat_map(|a| (0..d).map(move |b| (a, b)))
+            .map(|(a, b)| z[a] * prec[a * d + b] * z[b])
+            .sum();
+        -0.5 * (q + log_det + d as f64 * (2.0 * std::f64::consts::PI).ln())
+    }
+}
+
+/// The untrained model of `t` from one Gaussian, trained on every row: the ML Gaussian of
+/// the rows with its optimal control (the test above).
+fn untrained(t: &Table) -> TabularModel {
+    let model = LatentConfig {
+        noise_components: Some(1),
+        ..LatentConfig::default()
+    };
+    let cfg = TrainConfig {
+        validation_fraction: 0.0,
+        batch_size: 32,
+        ..Default::default()
+    };
+    Trainer::new(t, model, cfg).unwrap().into_model()
+}
+
+/// iris's setosa rows (0–49) and the other two species' rows (50–149).
+fn iris_groups() -> (Table, Table, Table) {
+    // iris (Fisher 1936, Ann. Eugenics 7:179–188), 150 × 4, as linfa-datasets ships it.
+    let x = linfa_datasets::iris().records().clone();
+    let rows = x.outer_iter().map(|r| r.to_vec()).collect();
+    let names = ["sepal_length", "sepal_width", "petal_length", "petal_width"];
+    let iris = Table::new(names.iter().map(|s| s.to_string()).collect(), rows).unwrap();
+    let a = iris.take_rows(&(0..50).collect::<Vec<_>>()).unwrap();
+    let b = iris.take_rows(&(50..150).collect::<Vec<_>>()).unwrap();
+    (iris, a, b)
+}
+
+#[test]
+fn an_ensemble_of_untrained_models_is_the_mixture_of_their_gaussians() {
+    // Each member is the ML Gaussian of its rows, so the ensemble with weights 1/4 and 3/4
+    // is the two-component mixture ¼ N(μ₁, Σ₁) + ¾ N(μ₂, Σ₂) (mixture density: Bishop
+    // 2006, PRML eq. 9.7), computed here in closed form on iris (Fisher 1936) rows of all
+    // three species.
+    let (iris, a, b) = iris_groups();
+    let ensemble = Ensemble::with_weights(vec![untrained(&a), untrained(&b)], &[1.0, 3.0]).unwrap();
+    assert_eq!(ensemble.weights(), &[0.25, 0.75]);
+    let rows = iris
+        .take_rows(&(0..150).step_by(3).collect::<Vec<_>>())
+        .unwrap();
+    let (pa, pb) = (ml_gaussian_logpdf(&a), ml_gaussian_logpdf(&b));
+    let exact: Vec<f64> = (0..rows.n_rows())
+        .map(|i| {
+            let (la, lb) = (
+                0.25f64.ln() + pa(rows.row(i)),
+                0.75f64.ln() + pb(rows.row(i)),
+            );
+            let top = la.max(lb);
+            top + ((la - top).exp() + (lb - top).exp()).ln()
+        })
+        .collect();
+    let e = ensemble.evaluate(&rows, EvalOptions::new(64, 9)).unwrap();
+    assert_eq!(e.loglik_rows.len(), 50);
+    let diff: Vec<f64> = e
+        .loglik_rows
+        .iter()
+        .zip(&exact)
+        .map(|(a, b)| a - b)
+        .collect();
+    // Row by row the estimate is near the closed form (Monte Carlo noise plus the O(1/K)
+    // bias of a log of a mean, as in the test above); checked apart on the setosa rows and
+    // on the others, so that a wrong weight on either member shows (it shifts the two
+    // groups' figures in opposite directions).
+    for (group, setosa) in [("setosa", true), ("other species", false)] {
+        let d: Vec<f64> = (0..50)
+            .filter(|i| (3 * i < 50) == setosa)
+            .map(|i| diff[i])
+            .collect();
+        let (dm, dse) = mean_se(&d);
+        assert_within(
+            &format!("ensemble IW estimate − exact mixture, {group} rows"),
+            dm,
+            0.0,
+            dse,
+            4.0,
+            0.01,
+        );
+    }
+    // Each member's ELBO bounds its log-likelihood, so the ensemble's ELBO bounds its own.
+    assert!(e.elbo_per_row <= e.loglik_per_row + 1e-9);
+    // The mixture beats each member alone on rows of all species (setosa rows lie far
+    // in the tail of the other species' Gaussian and the reverse).
+    for m in ensemble.members() {
+        let alone = m.evaluate(&rows, EvalOptions::new(64, 9)).unwrap();
+        assert!(e.loglik_per_row > alone.loglik_per_row + 1.0);
+    }
+}
+
+#[test]
+fn an_ensemble_of_one_model_twice_is_that_model() {
+    // log(½ p + ½ p) = log p, row by row (algebra; no source needed).
+    let (_, a, _) = iris_groups();
+    let one = || untrained(&a);
+    let ensemble = Ensemble::new(vec![one(), one()]).unwrap();
+    let alone = one().evaluate(&a, EvalOptions::new(16, 3)).unwrap();
+    let both = ensemble.evaluate(&a, EvalOptions::new(16, 3)).unwrap();
+    for (x, y) in alone.loglik_rows.iter().zip(&both.loglik_rows) {
+        assert!((x - y).abs() < 1e-9, "{x} vs {y}");
+    }
+    for (x, y) in alone.elbo_rows.iter().zip(&both.elbo_rows) {
+        assert!((x - y).abs() < 1e-9, "{x} vs {y}");
+    }
+    assert_eq!(both.observed_cells, alone.observed_cells);
+}
+
+#[test]
+fn an_ensemble_generates_from_each_member_in_proportion_to_its_weight() {
+    // The mean of a mixture is the weighted mean of its components' means (Bishop 2006,
+    // PRML eq. 9.7 integrated against y); each untrained member's mean is its rows' mean.
+    let (_, a, b) = iris_groups();
+    let ensemble = Ensemble::with_weights(vec![untrained(&a), untrained(&b)], &[1.0, 3.0]).unwrap();
+    let g = ensemble.generate(20_000, 5).unwrap();
+    assert_eq!(g.columns(), a.columns());
+    assert_eq!(g.n_rows(), 20_000);
+    for j in 0..4 {
+        let mean = |t: &Table| t.column(j).iter().sum::<f64>() / t.n_rows() as f64;
+        let want = 0.25 * mean(&a) + 0.75 * mean(&b);
+        let (gm, gse) = mean_se(&g.column(j));
+        assert_within(&format!("mean of column {j}"), gm, want, gse, 4.0, 0.0);
+    }
+    // Petal length (column 2) separates setosa (below 2.5 cm) from the rest: the share of
+    // generated rows below it is the first weight, within 4 binomial standard errors.
+    let share = g.column(2).iter().filter(|&&v| v < 2.5).count() as f64 / 20_000.0;
+    let se = (0.25f64 * 0.75 / 20_000.0).sqrt();
+    assert!((share - 0.25).abs() < 4.0 * se + 0.005, "share {share}");
+    // Seeded.
+    assert_eq!(
+        ensemble.generate(50, 5).unwrap().values(),
+        ensemble.generate(50, 5).unwrap().values()
+    );
+    assert_ne!(
+        ensemble.generate(50, 5).unwrap().values(),
+        ensemble.generate(50, 6).unwrap().values()
+    );
+}
+
+#[test]
+fn an_ensemble_refuses_bad_members_and_weights() {
+    let (_, a, _) = iris_groups();
+    let short = a.select(&a.columns()[..3]).unwrap();
+    let bad = |r: Result<Ensemble>, what: &str| {
+        let msg = r.unwrap_err().to_string();
+        assert!(msg.contains(what), "{msg}");
+    };
+    bad(Ensemble::new(Vec::new()), "at least one fitted model");
+    bad(
+        Ensemble::with_weights(vec![untrained(&a)], &[1.0, 1.0]),
+        "one weight per member",
+    );
+    for w in [0.0, -1.0, f64::NAN, f64::INFINITY] {
+        bad(
+            Ensemble::with_weights(vec![untrained(&a), untrained(&a)], &[1.0, w]),
+            "finite and positive",
+        );
+    }
+    bad(
+        Ensemble::new(vec![untrained(&a), untrained(&short)]),
+        "member 1 models the columns",
+    );
+}

@@ -130,22 +130,35 @@ impl TabularModel {
     /// [`Error::Data`] if the table lacks the model's columns; [`Error::InvalidConfig`] for
     /// 0 paths.
     pub fn evaluate(&self, table: &Table, options: EvalOptions) -> Result<Evaluation> {
+        let figures = self.row_figures(table, options)?;
+        let mut sums = EvalSums::default();
+        for &(e, l, cells) in &figures {
+            sums.add(e, l, cells);
+        }
+        let per_row = figures.iter().map(|&(e, l, _)| (e, l)).unzip();
+        sums.finish(self.columns.len(), options.paths, Some(per_row))
+    }
+
+    /// Each row's ELBO, importance-weighted log-likelihood (data units) and observed cells,
+    /// as [`TabularModel::evaluate`] computes them.
+    pub(crate) fn row_figures(
+        &self,
+        table: &Table,
+        options: EvalOptions,
+    ) -> Result<Vec<(f64, f64, usize)>> {
         let paths = check_paths(options.paths)?;
         let table = self.matching(table)?;
         let d = self.columns.len();
         let mut rng = generator(options.seed, streams::EVAL);
         let chunk_rows = self.eval_chunk_rows(paths);
-        let mut sums = EvalSums::default();
-        let (mut elbo_rows, mut loglik_rows) = (Vec::new(), Vec::new());
+        let mut out = Vec::with_capacity(table.n_rows());
         for (c, rows) in table.values().chunks(chunk_rows * d).enumerate() {
             let at = (table.source(), c * chunk_rows);
             self.eval_chunk(rows, at, paths, &mut rng, |e, l, cells| {
-                sums.add(e, l, cells);
-                elbo_rows.push(e);
-                loglik_rows.push(l);
+                out.push((e, l, cells))
             })?;
         }
-        sums.finish(d, paths, Some((elbo_rows, loglik_rows)))
+        Ok(out)
     }
 
     /// As [`TabularModel::evaluate`] on the rows of a CSV file, read a chunk at a time: memory

@@ -8,6 +8,7 @@ pub(crate) mod compare;
 #[cfg(feature = "csv")]
 pub(crate) mod csv_io;
 pub(crate) mod demo;
+pub(crate) mod ensemble;
 pub(crate) mod evaluation;
 pub(crate) mod fitted;
 pub(crate) mod impute;

@@ -80,4 +80,6 @@ pub(crate) mod streams {
     pub const IMPUTE_PATHS: u64 = 9;
     /// Resampling and cell draws of imputation, keyed by row.
     pub const IMPUTE_DRAWS: u64 = 10;
+    /// Which member of an ensemble generates each row, and the members' seeds.
+    pub const ENSEMBLE: u64 = 11;
 }
