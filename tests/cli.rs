@@ -102,6 +102,37 @@ fn fit_evaluate_sample_inspect_on_the_demo() {
     assert!(
         String::from_utf8_lossy(&run(bin().arg("inspect").arg(&more)).stdout).contains("3 epochs")
     );
+
+    // The ensemble of a model with itself is that model, row by row (log(½p + ½p) = log p).
+    let evaluate = |first: &Path, with: &[&Path]| -> serde_json::Value {
+        let mut c = bin();
+        c.arg("evaluate")
+            .arg(first)
+            .args(["--demo", "--paths", "4", "--json"]);
+        for w in with {
+            c.arg("--with").arg(w);
+        }
+        let o = run(&mut c);
+        assert!(o.status.success(), "{}", stderr(&o));
+        serde_json::from_str(String::from_utf8_lossy(&o.stdout).trim()).unwrap()
+    };
+    let ll = |v: &serde_json::Value| v["loglik_per_row"].as_f64().unwrap();
+    let alone = evaluate(&model, &[]);
+    assert_eq!(alone["models"], 1);
+    let twice = evaluate(&model, &[&model]);
+    assert_eq!(twice["models"], 2);
+    assert!((ll(&twice) - ll(&alone)).abs() < 1e-9, "{twice} vs {alone}");
+    // With the resumed fit: each row's log(½a + ½b) is at least the mean of the two logs
+    // (Jensen's inequality) and at least the larger one minus log 2, so the means obey
+    // the same bounds (each member's rows are scored with the same paths either way).
+    let other = ll(&evaluate(&more, &[]));
+    let both = evaluate(&model, &[&more]);
+    assert!(ll(&both) >= 0.5 * (ll(&alone) + other) - 1e-9, "{both}");
+    assert!(
+        ll(&both) >= ll(&alone).max(other) - 2f64.ln() - 1e-9,
+        "{both}"
+    );
+    assert!(ll(&both) != ll(&alone) && ll(&both) != other, "{both}");
 }
 
 #[test]
@@ -182,6 +213,37 @@ fn bad_inputs_exit_2_with_one_line_and_write_nothing() {
         .arg(d.join("cut.safetensors"))
         .arg(&ok));
     assert_input_error(&o, &["cut.safetensors", "truncated"]);
+    // An ensemble refuses a member that is not a whole model, or one of other columns.
+    let o = run(bin()
+        .arg("evaluate")
+        .arg(&model)
+        .arg(&ok)
+        .arg("--with")
+        .arg(d.join("cut.safetensors")));
+    assert_input_error(&o, &["cut.safetensors", "truncated"]);
+    let narrow = d.join("narrow.safetensors");
+    assert!(run(bin()
+        .arg("fit")
+        .arg(&ok)
+        .args(["--columns", "a", "--epochs", "1", "--out"])
+        .arg(&narrow))
+    .status
+    .success());
+    let o = run(bin()
+        .arg("evaluate")
+        .arg(&model)
+        .arg(&ok)
+        .arg("--with")
+        .arg(&narrow));
+    assert_input_error(
+        &o,
+        &[
+            "--with",
+            "narrow.safetensors",
+            "columns",
+            "1 columns against 2",
+        ],
+    );
     let o = run(bin().arg("inspect").arg(d.join("text.csv")));
     assert_input_error(&o, &["not a valid safetensors"]);
     let samples = d.join("s.csv");
@@ -214,7 +276,10 @@ fn every_command_explains_its_options_and_defaults() {
                 "synthetic",
             ],
         ),
-        ("evaluate", vec!["--paths", "[default: 128]", "--json"]),
+        (
+            "evaluate",
+            vec!["--paths", "[default: 128]", "--json", "--with"],
+        ),
         ("sample", vec!["--rows", "--seed", "[default: 0]", "--plot"]),
         ("inspect", vec!["Model written by"]),
     ] {

@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use clap::Args;
-use neural_sde::{EvalOptions, TabularModel};
+use neural_sde::{Ensemble, EvalOptions, Evaluation, Table, TabularModel};
 
 use super::{positive_usize, Failure};
 
@@ -47,13 +47,69 @@ pub struct EvaluateArgs {
     /// Rows to generate for --against [default: as many as it has].
     #[arg(long, value_parser = positive_usize)]
     rows: Option<usize>,
+    /// Evaluate the equal-weight ensemble of the model and this one (a model of the same
+    /// columns, e.g. fitted with another --seed): the mixture of their densities, which
+    /// --against and --baseline then also use. Repeat for more models.
+    #[arg(long = "with", value_name = "MODEL")]
+    with: Vec<PathBuf>,
+}
+
+/// What is evaluated: one model, or the ensemble of several.
+enum Scored {
+    One(Box<TabularModel>),
+    Many(Ensemble),
+}
+
+impl Scored {
+    /// The model, or the ensemble's first member (its columns and types are every member's).
+    fn first(&self) -> &TabularModel {
+        match self {
+            Scored::One(m) => m,
+            Scored::Many(e) => &e.members()[0],
+        }
+    }
+
+    fn evaluate(&self, table: &Table, options: EvalOptions) -> neural_sde::Result<Evaluation> {
+        match self {
+            Scored::One(m) => m.evaluate(table, options),
+            Scored::Many(e) => e.evaluate(table, options),
+        }
+    }
+
+    fn generate(&self, rows: usize, seed: u64) -> neural_sde::Result<Table> {
+        match self {
+            Scored::One(m) => m.generate(rows, seed),
+            Scored::Many(e) => e.generate(rows, seed),
+        }
+    }
 }
 
 pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
-    let model = TabularModel::load(&a.model)?;
+    let first = TabularModel::load(&a.model)?;
+    let scored = if a.with.is_empty() {
+        Scored::One(Box::new(first))
+    } else {
+        let mut members = vec![first];
+        for path in &a.with {
+            let m = TabularModel::load(path)?;
+            if m.columns() != members[0].columns() || m.schema().kinds != members[0].schema().kinds
+            {
+                return Err(Failure::input(format!(
+                    "--with {}: its columns or column types differ from those of {} ({} columns against {}); an ensemble combines models of the same columns, e.g. fits of one table with different --seed",
+                    path.display(),
+                    a.model.display(),
+                    m.columns().len(),
+                    members[0].columns().len()
+                )));
+            }
+            members.push(m);
+        }
+        Scored::Many(Ensemble::new(members)?)
+    };
+    let model = scored.first();
     let header = super::header_line(a.header, a.no_header)?;
     let against = match &a.against {
-        Some(p) => Some(compare_with(&model, p, header, &a)?),
+        Some(p) => Some(compare_with(&scored, p, header, &a)?),
         None => None,
     };
     if a.data.is_none() && !a.demo {
@@ -70,7 +126,9 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
     let mut baselines = Vec::new();
     let e = match (&a.data, a.demo) {
         // A file is read a chunk of rows at a time: memory does not grow with its length.
-        (Some(path), false) if a.baseline.is_none() => model.evaluate_csv(path, header, options)?,
+        (Some(path), false) if a.baseline.is_none() && a.with.is_empty() => {
+            model.evaluate_csv(path, header, options)?
+        }
         _ => {
             let table = super::load_table_with(
                 a.data.as_deref(),
@@ -79,9 +137,9 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
                 header,
                 super::Reading::Schema(model.schema()),
             )?;
-            let e = model.evaluate(&table, options)?;
+            let e = scored.evaluate(&table, options)?;
             if let Some(train) = &a.baseline {
-                baselines = compare_with_baselines(&model, train, header, &table, &e)?;
+                baselines = compare_with_baselines(model, train, header, &table, &e)?;
             }
             e
         }
@@ -99,9 +157,16 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
             "loglik_se_per_row": e.loglik_se,
             "baselines": baselines,
             "against": against,
+            "models": 1 + a.with.len(),
         });
         println!("{v}");
     } else {
+        if !a.with.is_empty() {
+            println!(
+                "the equal-weight ensemble of {} models (the mixture of their densities)",
+                1 + a.with.len()
+            );
+        }
         println!("{e}");
         if let Some(c) = &against {
             println!("{c}");
@@ -121,11 +186,12 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
 
 /// Generates rows from the model and compares them with the rows of `path`.
 fn compare_with(
-    model: &TabularModel,
+    scored: &Scored,
     path: &std::path::Path,
     header: neural_sde::HeaderLine,
     a: &EvaluateArgs,
 ) -> Result<neural_sde::SampleComparison, Failure> {
+    let model = scored.first();
     let data = super::load_table_with(
         Some(path),
         false,
@@ -133,7 +199,7 @@ fn compare_with(
         header,
         super::Reading::Schema(model.schema()),
     )?;
-    let generated = model.generate(a.rows.unwrap_or(data.n_rows()), a.seed)?;
+    let generated = scored.generate(a.rows.unwrap_or(data.n_rows()), a.seed)?;
     let options = neural_sde::CompareOptions {
         seed: a.seed,
         ..Default::default()
