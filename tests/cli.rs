@@ -133,6 +133,34 @@ fn fit_evaluate_sample_inspect_on_the_demo() {
         "{both}"
     );
     assert!(ll(&both) != ll(&alone) && ll(&both) != other, "{both}");
+
+    // Rows from the ensemble: seeded, and never written over a member's file.
+    let sample = |out: &Path, extra: &[&str]| {
+        run(bin()
+            .arg("sample")
+            .arg(&model)
+            .arg("--with")
+            .arg(&more)
+            .args(["--rows", "300", "--seed", "5"])
+            .args(extra)
+            .arg("--out")
+            .arg(out))
+    };
+    let (e1, e2) = (d.join("e1.csv"), d.join("e2.csv"));
+    assert!(sample(&e1, &[]).status.success());
+    assert!(sample(&e2, &[]).status.success());
+    let rows = std::fs::read_to_string(&e1).unwrap();
+    assert_eq!(rows.lines().count(), 301);
+    assert_eq!(rows, std::fs::read_to_string(&e2).unwrap());
+    let before = std::fs::read(&more).unwrap();
+    assert_input_error(&sample(&more, &[]), &["--with model", "--out"]);
+    assert_eq!(before, std::fs::read(&more).unwrap());
+    let e3 = d.join("e3.csv");
+    assert_input_error(
+        &sample(&e3, &["--given", "co2_ppm=500"]),
+        &["--given", "--with"],
+    );
+    assert!(!e3.exists());
 }
 
 #[test]
@@ -280,7 +308,10 @@ fn every_command_explains_its_options_and_defaults() {
             "evaluate",
             vec!["--paths", "[default: 128]", "--json", "--with"],
         ),
-        ("sample", vec!["--rows", "--seed", "[default: 0]", "--plot"]),
+        (
+            "sample",
+            vec!["--rows", "--seed", "[default: 0]", "--plot", "--with"],
+        ),
         ("inspect", vec!["Model written by"]),
     ] {
         let o = run(bin().args([cmd, "--help"]));

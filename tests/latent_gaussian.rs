@@ -343,6 +343,16 @@ fn an_ensemble_generates_from_each_member_in_proportion_to_its_weight() {
         ensemble.generate(50, 5).unwrap().values(),
         ensemble.generate(50, 6).unwrap().values()
     );
+    // The file gets the rows `generate` returns, and the call returns them too.
+    let path = std::env::temp_dir().join(format!("ensemble-{}.csv", std::process::id()));
+    let kept = ensemble.generate_csv(&path, 50, 5).unwrap();
+    assert_eq!(kept.values(), ensemble.generate(50, 5).unwrap().values());
+    let back = Table::from_csv(&path, None).unwrap();
+    std::fs::remove_file(&path).unwrap();
+    assert_eq!(back.n_rows(), 50);
+    for (x, y) in back.values().iter().zip(kept.values()) {
+        assert!((x - y).abs() <= 1e-12 * y.abs().max(1.0), "{x} vs {y}");
+    }
 }
 
 #[test]

@@ -89,21 +89,8 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
     let scored = if a.with.is_empty() {
         Scored::One(Box::new(first))
     } else {
-        let mut members = vec![first];
-        for path in &a.with {
-            let m = TabularModel::load(path)?;
-            if m.columns() != members[0].columns() || m.schema().kinds != members[0].schema().kinds
-            {
-                return Err(Failure::input(format!(
-                    "--with {}: its columns or column types differ from those of {} ({} columns against {}); an ensemble combines models of the same columns, e.g. fits of one table with different --seed",
-                    path.display(),
-                    a.model.display(),
-                    m.columns().len(),
-                    members[0].columns().len()
-                )));
-            }
-            members.push(m);
-        }
+        let mut members = load_members(&a.model, &first, &a.with)?;
+        members.insert(0, first);
         Scored::Many(Ensemble::new(members)?)
     };
     let model = scored.first();
@@ -182,6 +169,29 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
         }
     }
     Ok(())
+}
+
+/// The models at `paths`, each checked to model the columns of `first` (read from `at`).
+pub fn load_members(
+    at: &std::path::Path,
+    first: &TabularModel,
+    paths: &[PathBuf],
+) -> Result<Vec<TabularModel>, Failure> {
+    let mut out = Vec::with_capacity(paths.len());
+    for path in paths {
+        let m = TabularModel::load(path)?;
+        if m.columns() != first.columns() || m.schema().kinds != first.schema().kinds {
+            return Err(Failure::input(format!(
+                "--with {}: its columns or column types differ from those of {} ({} columns against {}); an ensemble combines models of the same columns, e.g. fits of one table with different --seed",
+                path.display(),
+                at.display(),
+                m.columns().len(),
+                first.columns().len()
+            )));
+        }
+        out.push(m);
+    }
+    Ok(out)
 }
 
 /// Generates rows from the model and compares them with the rows of `path`.

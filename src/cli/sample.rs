@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use clap::Args;
-use neural_sde::TabularModel;
+use neural_sde::{Ensemble, TabularModel};
 
 use super::files::Files;
 use super::{positive_usize, Failure};
@@ -45,16 +45,32 @@ pub struct SampleArgs {
     /// conditional.
     #[arg(long, default_value_t = 256, value_parser = positive_usize)]
     paths: usize,
+    /// Generate from the equal-weight ensemble of the model and this one (a model of the same
+    /// columns, e.g. fitted with another --seed): each row comes from a member drawn at
+    /// random. Repeat for more models. Not with --given.
+    #[arg(long = "with", value_name = "MODEL")]
+    with: Vec<PathBuf>,
 }
 
 pub fn run(a: SampleArgs) -> Result<(), Failure> {
-    Files::default()
+    let mut files = Files::default();
+    files
         .input("model", Some(&a.model))
-        .input("data file", a.data.as_deref())
+        .input("data file", a.data.as_deref());
+    for w in &a.with {
+        files.input("--with model", Some(w));
+    }
+    files
         .output("--out", Some(&a.out))
         .output("--plot", a.plot.as_deref())
         .check()?;
+    if !a.with.is_empty() && !a.given.is_empty() {
+        return Err(Failure::input(
+            "--given draws from one model's conditional distribution; leave out --with, or --given",
+        ));
+    }
     let model = TabularModel::load(&a.model)?;
+    let others = super::evaluate::load_members(&a.model, &model, &a.with)?;
     let reference = if a.data.is_some() || a.demo {
         Some(super::load_table_with(
             a.data.as_deref(),
@@ -66,7 +82,11 @@ pub fn run(a: SampleArgs) -> Result<(), Failure> {
     } else {
         None
     };
-    let first = if a.given.is_empty() {
+    let first = if !others.is_empty() {
+        let mut members = vec![model];
+        members.extend(others);
+        Ensemble::new(members)?.generate_csv(&a.out, a.rows, a.seed)?
+    } else if a.given.is_empty() {
         // Streamed to the file; the plot shows the first rows.
         model.generate_csv(&a.out, a.rows, a.seed)?
     } else {

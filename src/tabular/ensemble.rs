@@ -1,5 +1,7 @@
 //! An ensemble of fitted models of one table: the mixture density `Σ_m w_m p_m(y)`.
 
+use std::path::Path;
+
 use rand::RngCore;
 
 use crate::error::{Error, Result};
@@ -146,45 +148,98 @@ impl Ensemble {
 
     /// Generates `rows` new rows in the data's units: each row's member is drawn with
     /// probability its weight, then each member generates its rows as
-    /// [`TabularModel::generate`] does, with a seed of its own drawn from `seed`.
+    /// [`TabularModel::generate`] does, with seeds drawn from `seed` (in batches of
+    /// [`Ensemble::BATCH_ROWS`] rows, the same as [`Ensemble::generate_csv`]'s).
     ///
     /// # Errors
-    /// As [`TabularModel::generate`].
+    /// [`Error::InvalidConfig`] for `rows == 0` or more than 100 ×
+    /// [`TabularModel::KEPT_ROWS`]; as [`TabularModel::generate`].
     pub fn generate(&self, rows: usize, seed: u64) -> Result<Table> {
-        if rows == 0 {
-            return Err(Error::config("rows", 0, "generate at least 1 row"));
-        }
-        let first = &self.members[0];
         let limit = TabularModel::KEPT_ROWS * 100;
         if rows > limit {
             return Err(Error::config(
                 "rows",
                 rows,
-                format!("at most {limit} rows are generated in memory"),
+                format!("at most {limit} rows are generated in memory; stream more to a file with generate_csv"),
             ));
         }
-        let mut rng = generator(seed, streams::ENSEMBLE);
-        let seeds: Vec<u64> = self.members.iter().map(|_| rng.next_u64()).collect();
-        let owner: Vec<usize> = (0..rows)
-            .map(|_| pick(&self.weights, uniform(&mut rng)))
-            .collect();
-        let mut drawn = Vec::with_capacity(self.members.len());
-        for (m, model) in self.members.iter().enumerate() {
-            let count = owner.iter().filter(|&&o| o == m).count();
-            drawn.push(if count == 0 {
-                Vec::new()
-            } else {
-                model.generate(count, seeds[m])?.values().to_vec()
-            });
-        }
+        let mut out = Vec::new();
+        self.batches(rows, seed, |batch| {
+            out.extend_from_slice(batch);
+            Ok(())
+        })?;
+        self.members[0].table_of(out)
+    }
+
+    /// Generates `rows` new rows like [`Ensemble::generate`] (the same rows for the same
+    /// seed) and streams them to a CSV file at `path` (atomically), so memory does not grow
+    /// with `rows`. Returns the first rows, at most [`TabularModel::KEPT_ROWS`].
+    ///
+    /// # Errors
+    /// As [`TabularModel::generate_csv`].
+    pub fn generate_csv(&self, path: impl AsRef<Path>, rows: usize, seed: u64) -> Result<Table> {
+        crate::util::limits::at_most(
+            "rows",
+            rows,
+            crate::util::limits::MAX_GENERATED_ROWS,
+            "rows per call",
+        )?;
+        let first = &self.members[0];
         let d = first.columns().len();
-        let mut next = vec![0; self.members.len()];
-        let mut out = Vec::with_capacity(rows * d);
-        for &m in &owner {
-            out.extend_from_slice(&drawn[m][next[m] * d..(next[m] + 1) * d]);
-            next[m] += 1;
+        let mut file = crate::util::fs::AtomicFile::create(path.as_ref())?;
+        crate::tabular::table::write_csv_header(&mut file, first.columns())?;
+        let mut kept = Vec::new();
+        self.batches(rows, seed, |batch| {
+            crate::tabular::table::write_typed_rows(&mut file, batch, &first.schema().kinds)?;
+            let room = (TabularModel::KEPT_ROWS * d).saturating_sub(kept.len());
+            kept.extend(batch.iter().take(room));
+            Ok(())
+        })?;
+        file.commit()?;
+        first.table_of(kept)
+    }
+
+    /// Rows drawn together: each batch draws its rows' members, then each member's rows.
+    pub const BATCH_ROWS: usize = 10_000;
+
+    /// Calls `each` with the generated rows (data units, row-major) of each batch in turn.
+    fn batches(
+        &self,
+        rows: usize,
+        seed: u64,
+        mut each: impl FnMut(&[f64]) -> Result<()>,
+    ) -> Result<()> {
+        if rows == 0 {
+            return Err(Error::config("rows", 0, "generate at least 1 row"));
         }
-        first.table_of(out)
+        let d = self.members[0].columns().len();
+        let mut rng = generator(seed, streams::ENSEMBLE);
+        let mut done = 0;
+        while done < rows {
+            let n = Self::BATCH_ROWS.min(rows - done);
+            let owner: Vec<usize> = (0..n)
+                .map(|_| pick(&self.weights, uniform(&mut rng)))
+                .collect();
+            let mut drawn = Vec::with_capacity(self.members.len());
+            for (m, model) in self.members.iter().enumerate() {
+                let member_seed = rng.next_u64();
+                let count = owner.iter().filter(|&&o| o == m).count();
+                drawn.push(if count == 0 {
+                    Vec::new()
+                } else {
+                    model.generate(count, member_seed)?.values().to_vec()
+                });
+            }
+            let mut next = vec![0; self.members.len()];
+            let mut out = Vec::with_capacity(n * d);
+            for &m in &owner {
+                out.extend_from_slice(&drawn[m][next[m] * d..(next[m] + 1) * d]);
+                next[m] += 1;
+            }
+            each(&out)?;
+            done += n;
+        }
+        Ok(())
     }
 }
 
