@@ -148,36 +148,8 @@ fn initial_model_is_the_gaussian_fit_and_its_control_is_near_optimal() {
     );
     // And the closed form is the ML Gaussian: compare with a direct fit of all rows
     // (the scaler and model were fitted on all 300 rows here).
-    let d = 3;
-    let n = table.n_rows() as f64;
-    let mean: Vec<f64> = (0..d)
-        .map(|j| table.column(j).iter().sum::<f64>() / n)
-        .collect();
-    let mut cov = vec![0.0; 9];
-    for i in 0..table.n_rows() {
-        let r = table.row(i);
-        for a in 0..d {
-            for b in 0..d {
-                cov[a * d + b] += (r[a] - mean[a]) * (r[b] - mean[b]) / n;
-            }
-        }
-    }
-    let l = linalg::cholesky(&cov, d).unwrap();
-    let prec = linalg::cholesky_inverse(&l, d);
-    let ml: f64 = (0..50)
-        .map(|i| {
-            let r = rows.row(i);
-            let z: Vec<f64> = (0..d).map(|j| r[j] - mean[j]).collect();
-            let q: f64 = (0..d)
-                .flat_map(|a| (0..d).map(move |b| (a, b)))
-                .map(|(a, b)| z[a] * prec[a * d + b] * z[b])
-                .sum();
-            -0.5 * (q
-                + linalg::log_det_from_cholesky(&l, d)
-                + d as f64 * (2.0 * std::f64::consts::PI).ln())
-        })
-        .sum::<f64>()
-        / 50.0;
+    let logpdf = ml_gaussian_logpdf(&table);
+    let ml: f64 = (0..50).map(|i| logpdf(rows.row(i))).sum::<f64>() / 50.0;
     assert_rel("model marginal vs ML Gaussian", exact, ml, 1e-4);
 }
 

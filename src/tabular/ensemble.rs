@@ -178,25 +178,16 @@ impl Ensemble {
     /// # Errors
     /// As [`TabularModel::generate_csv`].
     pub fn generate_csv(&self, path: impl AsRef<Path>, rows: usize, seed: u64) -> Result<Table> {
+        if rows == 0 {
+            return Err(Error::config("rows", 0, "generate at least 1 row"));
+        }
         crate::util::limits::at_most(
             "rows",
             rows,
             crate::util::limits::MAX_GENERATED_ROWS,
             "rows per call",
         )?;
-        let first = &self.members[0];
-        let d = first.columns().len();
-        let mut file = crate::util::fs::AtomicFile::create(path.as_ref())?;
-        crate::tabular::table::write_csv_header(&mut file, first.columns())?;
-        let mut kept = Vec::new();
-        self.batches(rows, seed, |batch| {
-            crate::tabular::table::write_typed_rows(&mut file, batch, &first.schema().kinds)?;
-            let room = (TabularModel::KEPT_ROWS * d).saturating_sub(kept.len());
-            kept.extend(batch.iter().take(room));
-            Ok(())
-        })?;
-        file.commit()?;
-        first.table_of(kept)
+        self.members[0].stream_csv(path.as_ref(), |sink| self.batches(rows, seed, sink))
     }
 
     /// Rows drawn together: each batch draws its rows' members, then each member's rows.

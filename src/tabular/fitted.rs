@@ -297,16 +297,32 @@ impl TabularModel {
             crate::util::limits::MAX_GENERATED_ROWS,
             "rows per call",
         )?;
-        let mut file = crate::util::fs::AtomicFile::create(path.as_ref())?;
+        self.stream_csv(path.as_ref(), |sink| {
+            for y in self.generated_batches(rows, seed) {
+                sink(&y?)?;
+            }
+            Ok(())
+        })
+    }
+
+    /// Writes the rows `produce` hands to its sink, batch by batch (data units, row-major,
+    /// this model's columns), to a CSV file at `path` atomically, and returns the first of
+    /// them, at most [`TabularModel::KEPT_ROWS`]. Nothing is left at `path` on an error.
+    pub(crate) fn stream_csv(
+        &self,
+        path: &Path,
+        produce: impl FnOnce(&mut dyn FnMut(&[f64]) -> Result<()>) -> Result<()>,
+    ) -> Result<Table> {
+        let mut file = crate::util::fs::AtomicFile::create(path)?;
         crate::tabular::table::write_csv_header(&mut file, &self.columns)?;
         let d = self.columns.len();
         let mut kept = Vec::new();
-        for y in self.generated_batches(rows, seed) {
-            let y = y?;
-            crate::tabular::table::write_typed_rows(&mut file, &y, &self.schema.kinds)?;
+        produce(&mut |y: &[f64]| {
+            crate::tabular::table::write_typed_rows(&mut file, y, &self.schema.kinds)?;
             let room = (Self::KEPT_ROWS * d).saturating_sub(kept.len());
             kept.extend(y.iter().take(room));
-        }
+            Ok(())
+        })?;
         file.commit()?;
         self.table_of(kept)
     }
