@@ -178,15 +178,7 @@ impl Ensemble {
     /// # Errors
     /// As [`TabularModel::generate_csv`].
     pub fn generate_csv(&self, path: impl AsRef<Path>, rows: usize, seed: u64) -> Result<Table> {
-        if rows == 0 {
-            return Err(Error::config("rows", 0, "generate at least 1 row"));
-        }
-        crate::util::limits::at_most(
-            "rows",
-            rows,
-            crate::util::limits::MAX_GENERATED_ROWS,
-            "rows per call",
-        )?;
+        crate::tabular::fitted::check_streamed_rows(rows)?;
         self.members[0].stream_csv(path.as_ref(), |sink| self.batches(rows, seed, sink))
     }
 

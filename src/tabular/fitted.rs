@@ -288,15 +288,7 @@ impl TabularModel {
     /// As [`TabularModel::generate`]; [`Error::Io`] or [`Error::Data`] if the file cannot
     /// be written (nothing is left at `path` then).
     pub fn generate_csv(&self, path: impl AsRef<Path>, rows: usize, seed: u64) -> Result<Table> {
-        if rows == 0 {
-            return Err(Error::config("rows", 0, "generate at least 1 row"));
-        }
-        crate::util::limits::at_most(
-            "rows",
-            rows,
-            crate::util::limits::MAX_GENERATED_ROWS,
-            "rows per call",
-        )?;
+        check_streamed_rows(rows)?;
         self.stream_csv(path.as_ref(), |sink| {
             for y in self.generated_batches(rows, seed) {
                 sink(&y?)?;
@@ -536,6 +528,21 @@ impl ModelHeader {
         }
         Ok(())
     }
+}
+
+/// Checks a number of rows to generate into a file: at least 1, at most
+/// [`crate::util::limits::MAX_GENERATED_ROWS`].
+pub(crate) fn check_streamed_rows(rows: usize) -> Result<()> {
+    if rows == 0 {
+        return Err(Error::config("rows", 0, "generate at least 1 row"));
+    }
+    crate::util::limits::at_most(
+        "rows",
+        rows,
+        crate::util::limits::MAX_GENERATED_ROWS,
+        "rows per call",
+    )?;
+    Ok(())
 }
 
 /// Checks the number of posterior paths per row.
