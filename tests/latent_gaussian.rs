@@ -347,6 +347,10 @@ fn an_ensemble_refuses_bad_members_and_weights() {
         );
     }
     bad(
+        Ensemble::with_weights(vec![untrained(&a), untrained(&a)], &[f64::MAX, f64::MAX]),
+        "overflows",
+    );
+    bad(
         Ensemble::new(vec![untrained(&a), untrained(&short)]),
         "member 1 models the columns",
     );

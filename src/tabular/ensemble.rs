@@ -56,7 +56,7 @@ impl Ensemble {
     ///
     /// # Errors
     /// [`Error::InvalidConfig`] for no member, a weight count that differs from the member
-    /// count, or a weight that is not finite and positive; [`Error::Data`] naming the first
+    /// count, a weight that is not finite and positive, or weights whose sum overflows; [`Error::Data`] naming the first
     /// member whose columns or column types differ from the first member's.
     pub fn with_weights(members: Vec<TabularModel>, weights: &[f64]) -> Result<Self> {
         let Some(first) = members.first() else {
@@ -93,6 +93,13 @@ impl Ensemble {
             }
         }
         let total: f64 = weights.iter().sum();
+        if !total.is_finite() {
+            return Err(Error::config(
+                "weights",
+                total,
+                "the weights' sum overflows; scale them down (only their ratios matter)",
+            ));
+        }
         Ok(Self {
             weights: weights.iter().map(|w| w / total).collect(),
             members,
