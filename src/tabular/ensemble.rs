@@ -7,6 +7,7 @@ use rand::RngCore;
 use crate::error::{Error, Result};
 use crate::tabular::evaluation::{EvalOptions, EvalSums, Evaluation};
 use crate::tabular::fitted::TabularModel;
+use crate::tabular::mixture::log_sum_exp;
 use crate::tabular::model::pick;
 use crate::tabular::table::Table;
 use crate::util::rng::{generator, streams, uniform};
@@ -231,13 +232,4 @@ impl Ensemble {
         }
         Ok(())
     }
-}
-
-/// `log Σ exp(x)` without overflow (`−∞` for no term).
-fn log_sum_exp(x: &[f64]) -> f64 {
-    let top = x.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-    if !top.is_finite() {
-        return top;
-    }
-    top + x.iter().map(|v| (v - top).exp()).sum::<f64>().ln()
 }

@@ -333,7 +333,8 @@ fn log_normal(x: &[f64], mean: &[f64], l: &[f64], d: usize) -> f64 {
     -0.5 * (q + d as f64 * (2.0 * std::f64::consts::PI).ln()) - log_det
 }
 
-fn log_sum_exp(v: &[f64]) -> f64 {
+/// `log Σ exp(v)` without overflow (`−∞` for no term or all terms `−∞`).
+pub(crate) fn log_sum_exp(v: &[f64]) -> f64 {
     let m = v.iter().copied().fold(f64::NEG_INFINITY, f64::max);
     if !m.is_finite() {
         return m;
