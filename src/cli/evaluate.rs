@@ -180,7 +180,7 @@ pub fn load_members(
     let mut out = Vec::with_capacity(paths.len());
     for path in paths {
         let m = TabularModel::load(path)?;
-        if m.columns() != first.columns() || m.schema().kinds != first.schema().kinds {
+        if !m.same_columns_as(first) {
             return Err(Failure::input(format!(
                 "--with {}: its columns or column types differ from those of {} ({} columns against {}); an ensemble combines models of the same columns, e.g. fits of one table with different --seed",
                 path.display(),

@@ -57,8 +57,9 @@ impl Ensemble {
     ///
     /// # Errors
     /// [`Error::InvalidConfig`] for no member, a weight count that differs from the member
-    /// count, a weight that is not finite and positive, or weights whose sum overflows; [`Error::Data`] naming the first
-    /// member whose columns or column types differ from the first member's.
+    /// count, a weight that is not finite and positive, or weights whose sum overflows;
+    /// [`Error::Data`] naming the first member whose columns or column types differ from
+    /// the first member's ([`TabularModel::same_columns_as`]).
     pub fn with_weights(members: Vec<TabularModel>, weights: &[f64]) -> Result<Self> {
         let Some(first) = members.first() else {
             return Err(Error::config(
@@ -82,7 +83,7 @@ impl Ensemble {
             ));
         }
         for (m, model) in members.iter().enumerate().skip(1) {
-            if model.columns() != first.columns() || model.schema().kinds != first.schema().kinds {
+            if !model.same_columns_as(first) {
                 return Err(Error::Data {
                     path: "<ensemble>".into(),
                     reason: format!(

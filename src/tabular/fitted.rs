@@ -57,6 +57,12 @@ impl TabularModel {
         &self.schema
     }
 
+    /// Whether `other` models the same columns, in the same order and of the same types
+    /// (what [`crate::Ensemble`] requires of its members).
+    pub fn same_columns_as(&self, other: &TabularModel) -> bool {
+        self.columns == other.columns && self.schema.kinds == other.schema.kinds
+    }
+
     /// Training history (empty for a model that was never trained).
     pub fn history(&self) -> &History {
         &self.history
