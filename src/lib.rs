@@ -60,8 +60,9 @@
 //! [`ColumnRules`], [`RowLayout`]); [`TabularModel::impute`] fills missing cells and
 //! [`TabularModel::generate_given`] draws rows under conditions; [`compare_samples`] measures
 //! generated rows against data. [`Ensemble`] combines several fitted models of one table
-//! (fits of different seeds, say) as the mixture of their densities, and evaluates and
-//! generates like one model.
+//! (fits of different seeds, say) as the mixture of their densities, and evaluates,
+//! generates, imputes and saves like one model; [`EnsembleTrainer`] trains its members in
+//! turn and resumes them exactly (the `fit` command's default is two members).
 //!
 //! ## Speed: the fused kernel
 //!
@@ -121,6 +122,8 @@ pub use tabular::compare::{compare_samples, ColumnComparison, CompareOptions, Sa
 pub use tabular::csv_io::HeaderLine;
 pub use tabular::demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
 pub use tabular::ensemble::Ensemble;
+pub use tabular::ensemble_file::MAX_MEMBERS;
+pub use tabular::ensemble_trainer::{EnsembleTrainer, StartComparison};
 pub use tabular::evaluation::{EvalOptions, Evaluation};
 pub use tabular::fitted::TabularModel;
 pub use tabular::impute::{CellEstimate, Imputation, ImputeOptions};
@@ -131,7 +134,7 @@ pub use tabular::model::{
 };
 pub use tabular::scaler::Standardizer;
 pub use tabular::schema::{ColumnKind, ColumnRules, Schema};
-pub use tabular::summary::{inspect_checkpoint, CheckpointSummary};
+pub use tabular::summary::{inspect_checkpoint, inspect_members, CheckpointSummary};
 pub use tabular::table::{write_draws_csv, Table};
 pub use tabular::train::{
     EpochRecord, History, Observer, StepInfo, TrainConfig, TrainReport, TrainState, Trainer,

@@ -37,21 +37,44 @@ fn range(v: impl Iterator<Item = f64>) -> (f64, f64) {
 /// # Errors
 /// [`Error::Io`] if the file cannot be written.
 pub fn elbo_curve_svg(history: &History, dims: usize, path: impl AsRef<Path>) -> Result<()> {
+    elbo_curves_svg(&[history], dims, path)
+}
+
+/// As [`elbo_curve_svg`] for the members of an ensemble: each member's two curves, labelled
+/// with its number (from 1) when there are several.
+///
+/// # Errors
+/// [`Error::Io`] if the file cannot be written.
+pub fn elbo_curves_svg(histories: &[&History], dims: usize, path: impl AsRef<Path>) -> Result<()> {
     let d = dims.max(1) as f64;
-    let train: Vec<(f64, f64)> = history
-        .epochs
-        .iter()
-        .map(|r| (r.epoch as f64, r.train_elbo / d))
-        .collect();
-    let val: Vec<(f64, f64)> = history
-        .epochs
-        .iter()
-        .filter_map(|r| r.val_elbo.map(|v| (r.epoch as f64, v / d)))
-        .collect();
-    let mut series = vec![("training", train)];
-    if !val.is_empty() {
-        series.push(("validation", val));
+    let mut series = Vec::new();
+    for (m, history) in histories.iter().enumerate() {
+        let train: Vec<(f64, f64)> = history
+            .epochs
+            .iter()
+            .map(|r| (r.epoch as f64, r.train_elbo / d))
+            .collect();
+        let val: Vec<(f64, f64)> = history
+            .epochs
+            .iter()
+            .filter_map(|r| r.val_elbo.map(|v| (r.epoch as f64, v / d)))
+            .collect();
+        let label = |what: &str| {
+            if histories.len() == 1 {
+                what.to_string()
+            } else {
+                format!("member {} {what}", m + 1)
+            }
+        };
+        series.push((label("training"), train));
+        if !val.is_empty() {
+            series.push((label("validation"), val));
+        }
     }
+    let series: Vec<(&str, Vec<(f64, f64)>)> = series
+        .iter()
+        .map(|(l, v)| (l.as_str(), v.clone()))
+        .collect();
     curves_svg(
         "ELBO per dimension by epoch (standardised units)",
         "epoch",

@@ -117,10 +117,11 @@ fn fit_evaluate_sample_inspect_on_the_demo() {
         serde_json::from_str(String::from_utf8_lossy(&o.stdout).trim()).unwrap()
     };
     let ll = |v: &serde_json::Value| v["loglik_per_row"].as_f64().unwrap();
+    // The default fit is an ensemble of two models (one file).
     let alone = evaluate(&model, &[]);
-    assert_eq!(alone["models"], 1);
+    assert_eq!(alone["models"], 2);
     let twice = evaluate(&model, &[&model]);
-    assert_eq!(twice["models"], 2);
+    assert_eq!(twice["models"], 4);
     assert!((ll(&twice) - ll(&alone)).abs() < 1e-9, "{twice} vs {alone}");
     // With the resumed fit: each row's log(½a + ½b) is at least the mean of the two logs
     // (Jensen's inequality) and at least the larger one minus log 2, so the means obey
@@ -155,12 +156,16 @@ fn fit_evaluate_sample_inspect_on_the_demo() {
     let before = std::fs::read(&more).unwrap();
     assert_input_error(&sample(&more, &[]), &["--with model", "--out"]);
     assert_eq!(before, std::fs::read(&more).unwrap());
+    // Conditioned rows from the ensemble (its conditional: see `Ensemble::impute`).
     let e3 = d.join("e3.csv");
-    assert_input_error(
-        &sample(&e3, &["--given", "co2_ppm=500"]),
-        &["--given", "--with"],
-    );
-    assert!(!e3.exists());
+    let o = sample(&e3, &["--given", "co2_ppm=500", "--paths", "16"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let given = std::fs::read_to_string(&e3).unwrap();
+    assert_eq!(given.lines().count(), 301);
+    assert!(given
+        .lines()
+        .skip(1)
+        .all(|l| l.split(',').nth(3) == Some("500")));
 }
 
 #[test]
@@ -355,9 +360,13 @@ fn a_killed_fit_resumes_from_its_periodic_checkpoint() {
     child.wait().unwrap();
     // What the kill left is a complete checkpoint at an even epoch.
     let table = neural_sde::builtin_demo().unwrap();
-    let at = neural_sde::Trainer::resume(&model, &table).unwrap();
-    let e = at.state().epoch;
+    let at = neural_sde::EnsembleTrainer::resume(&model, &table).unwrap();
+    // The default fit's two members train in turn, and the file is written once both have
+    // trained the epoch.
+    assert_eq!(at.members().len(), 2);
+    let e = at.members()[0].state().epoch;
     assert!(e >= 2 && e.is_multiple_of(2), "epoch {e}");
+    assert_eq!(at.members()[1].state().epoch, e);
     let resumed = d.join("resumed.safetensors");
     let o = run(bin()
         .args([
@@ -371,8 +380,10 @@ fn a_killed_fit_resumes_from_its_periodic_checkpoint() {
         .arg("--out")
         .arg(&resumed));
     assert!(o.status.success(), "{}", stderr(&o));
-    let done = neural_sde::Trainer::resume(&resumed, &table).unwrap();
-    let h = &done.history().epochs;
-    assert_eq!(h.len(), e + 2);
-    assert_eq!(&h[..e], &at.history().epochs[..]);
+    let done = neural_sde::EnsembleTrainer::resume(&resumed, &table).unwrap();
+    for (now, then) in done.members().iter().zip(at.members()) {
+        let h = &now.history().epochs;
+        assert_eq!(h.len(), e + 2);
+        assert_eq!(&h[..e], &then.history().epochs[..]);
+    }
 }

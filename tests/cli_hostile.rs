@@ -319,7 +319,7 @@ fn resuming_from_weights_with_nan_is_assert_input_error() {
             .collect();
     let t = &mut tensors
         .iter_mut()
-        .find(|(n, _)| n == "decoder.linear.bias")
+        .find(|(n, _)| n.ends_with("decoder.linear.bias"))
         .unwrap()
         .1;
     *t = (&*t * f64::NAN).unwrap();
@@ -336,4 +336,135 @@ fn resuming_from_weights_with_nan_is_assert_input_error() {
         .unwrap();
     assert_input_error(&o, &["decoder.linear.bias", "NaN"]);
     assert!(!d.join("more.safetensors").exists());
+}
+
+#[test]
+fn hostile_ensemble_headers_are_refused_by_every_reader() {
+    let d = dir("ensemble-header");
+    let data = small(&d);
+    let good = d.join("good.safetensors");
+    let o = bin()
+        .arg("fit")
+        .arg(&data)
+        .args(["--epochs", "1", "--members", "2", "--out"])
+        .arg(&good)
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", stderr(&o));
+    let bytes = std::fs::read(&good).unwrap();
+    let tensors: Vec<(String, candle_core::Tensor)> =
+        candle_core::safetensors::load_buffer(&bytes, &candle_core::Device::Cpu)
+            .unwrap()
+            .into_iter()
+            .collect();
+    let (_, md) = safetensors::SafeTensors::read_metadata(&bytes).unwrap();
+    let entry: serde_json::Value =
+        serde_json::from_str(&md.metadata().clone().unwrap()["neural-sde"]).unwrap();
+    assert_eq!(entry["format"], "neural-sde-ensemble");
+    // Rewrites the header (and optionally the tensors) with the reference safetensors writer.
+    let write = |name: &str,
+                 edit: &dyn Fn(&mut serde_json::Value),
+                 extra: Option<(&str, candle_core::Tensor)>| {
+        let mut e = entry.clone();
+        edit(&mut e["header"]);
+        let meta = std::collections::HashMap::from([("neural-sde".to_string(), e.to_string())]);
+        let mut t = tensors.clone();
+        if let Some((n, x)) = extra {
+            t.push((n.to_string(), x));
+        }
+        let p = d.join(name);
+        safetensors::tensor::serialize_to_file(t, Some(meta), &p).unwrap();
+        p
+    };
+    let member = entry["header"]["members"][0].clone();
+    let cases: Vec<(PathBuf, &[&str])> = vec![
+        (
+            write(
+                "many.safetensors",
+                &|h| h["members"] = serde_json::Value::Array(vec![member.clone(); 17]),
+                None,
+            ),
+            &["17 members", "1 to 16"],
+        ),
+        (
+            write(
+                "weights.safetensors",
+                &|h| h["weights"] = serde_json::json!([1.0]),
+                None,
+            ),
+            &["1 weights for 2 members"],
+        ),
+        (
+            write(
+                "negative.safetensors",
+                &|h| h["weights"] = serde_json::json!([1.0, -2.0]),
+                None,
+            ),
+            &["weight -2", "finite and positive"],
+        ),
+        (
+            write(
+                "stray.safetensors",
+                &|_| {},
+                Some((
+                    "other.x",
+                    candle_core::Tensor::zeros(
+                        3,
+                        candle_core::DType::F64,
+                        &candle_core::Device::Cpu,
+                    )
+                    .unwrap(),
+                )),
+            ),
+            &["other.x", "none of the 2 members"],
+        ),
+        (
+            write(
+                "huge.safetensors",
+                &|h| {
+                    h["members"][1]["model_config"]["prior"]["width"] =
+                        serde_json::json!(1u64 << 40)
+                },
+                None,
+            ),
+            &["member 2 of 2"],
+        ),
+        (
+            write(
+                "columns.safetensors",
+                &|h| h["members"][1]["columns"] = serde_json::json!(["a", "z"]),
+                None,
+            ),
+            &["columns"],
+        ),
+    ];
+    for (file, says) in &cases {
+        for args in [
+            vec![
+                "evaluate".to_string(),
+                file.display().to_string(),
+                data.display().to_string(),
+            ],
+            vec!["inspect".to_string(), file.display().to_string()],
+            vec![
+                "fit".to_string(),
+                data.display().to_string(),
+                "--resume".to_string(),
+                file.display().to_string(),
+                "--out".to_string(),
+                d.join("out.safetensors").display().to_string(),
+            ],
+        ] {
+            let o = bin().args(&args).output().unwrap();
+            // `inspect` reads headers and builds no model: it can describe the members of
+            // the last two cases.
+            let described = ["columns.safetensors", "huge.safetensors"];
+            if args[0] == "inspect" && described.iter().any(|n| file.ends_with(n)) {
+                assert!(o.status.success(), "{}", stderr(&o));
+                continue;
+            }
+            assert_input_error(&o, says);
+        }
+    }
+    assert!(!d.join("out.safetensors").exists());
 }

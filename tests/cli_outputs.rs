@@ -203,7 +203,9 @@ fn samples_stream_to_the_file_and_match_the_library() {
         .output()
         .unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    let model = neural_sde::TabularModel::load(&m).unwrap();
+    // The default fit's file holds an ensemble.
+    let model = neural_sde::Ensemble::load(&m).unwrap();
+    assert_eq!(model.members().len(), 2);
     let whole = d.join("whole.csv");
     model.generate(9000, 3).unwrap().write_csv(&whole).unwrap();
     assert_eq!(std::fs::read(&out).unwrap(), std::fs::read(&whole).unwrap());

@@ -3,7 +3,9 @@
 use std::path::PathBuf;
 
 use clap::Args;
-use neural_sde::{Ensemble, EvalOptions, Evaluation, Table, TabularModel};
+use neural_sde::{EvalOptions, TabularModel};
+
+use super::models::Scored;
 
 use super::{positive_usize, Failure};
 
@@ -47,52 +49,15 @@ pub struct EvaluateArgs {
     /// Rows to generate for --against [default: as many as it has].
     #[arg(long, value_parser = positive_usize)]
     rows: Option<usize>,
-    /// Evaluate the equal-weight ensemble of the model and this one (a model of the same
-    /// columns, e.g. fitted with another --seed): the mixture of their densities, which
-    /// --against and --baseline then also use. Repeat for more models.
+    /// Evaluate the ensemble of the model and this one (a model file of the same columns, e.g.
+    /// fitted with another --seed), each file weighing the same: the mixture of their
+    /// densities, which --against and --baseline then also use. Repeat for more models.
     #[arg(long = "with", value_name = "MODEL")]
     with: Vec<PathBuf>,
 }
 
-/// What is evaluated: one model, or the ensemble of several.
-enum Scored {
-    One(Box<TabularModel>),
-    Many(Ensemble),
-}
-
-impl Scored {
-    /// The model, or the ensemble's first member (its columns and types are every member's).
-    fn first(&self) -> &TabularModel {
-        match self {
-            Scored::One(m) => m,
-            Scored::Many(e) => &e.members()[0],
-        }
-    }
-
-    fn evaluate(&self, table: &Table, options: EvalOptions) -> neural_sde::Result<Evaluation> {
-        match self {
-            Scored::One(m) => m.evaluate(table, options),
-            Scored::Many(e) => e.evaluate(table, options),
-        }
-    }
-
-    fn generate(&self, rows: usize, seed: u64) -> neural_sde::Result<Table> {
-        match self {
-            Scored::One(m) => m.generate(rows, seed),
-            Scored::Many(e) => e.generate(rows, seed),
-        }
-    }
-}
-
 pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
-    let first = TabularModel::load(&a.model)?;
-    let scored = if a.with.is_empty() {
-        Scored::One(Box::new(first))
-    } else {
-        let mut members = load_members(&a.model, &first, &a.with)?;
-        members.insert(0, first);
-        Scored::Many(Ensemble::new(members)?)
-    };
+    let scored = Scored::load(&a.model, &a.with)?;
     let model = scored.first();
     let header = super::header_line(a.header, a.no_header)?;
     let against = match &a.against {
@@ -113,7 +78,7 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
     let mut baselines = Vec::new();
     let e = match (&a.data, a.demo) {
         // A file is read a chunk of rows at a time: memory does not grow with its length.
-        (Some(path), false) if a.baseline.is_none() && a.with.is_empty() => {
+        (Some(path), false) if a.baseline.is_none() && scored.count() == 1 => {
             model.evaluate_csv(path, header, options)?
         }
         _ => {
@@ -144,14 +109,14 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
             "loglik_se_per_row": e.loglik_se,
             "baselines": baselines,
             "against": against,
-            "models": 1 + a.with.len(),
+            "models": scored.count(),
         });
         println!("{v}");
     } else {
-        if !a.with.is_empty() {
+        if scored.count() > 1 {
             println!(
-                "the equal-weight ensemble of {} models (the mixture of their densities)",
-                1 + a.with.len()
+                "an ensemble of {} models (the mixture of their densities)",
+                scored.count()
             );
         }
         println!("{e}");
@@ -169,29 +134,6 @@ pub fn run(a: EvaluateArgs) -> Result<(), Failure> {
         }
     }
     Ok(())
-}
-
-/// The models at `paths`, each checked to model the columns of `first` (read from `at`).
-pub fn load_members(
-    at: &std::path::Path,
-    first: &TabularModel,
-    paths: &[PathBuf],
-) -> Result<Vec<TabularModel>, Failure> {
-    let mut out = Vec::with_capacity(paths.len());
-    for path in paths {
-        let m = TabularModel::load(path)?;
-        if !m.same_columns_as(first) {
-            return Err(Failure::input(format!(
-                "--with {}: its columns or column types differ from those of {} ({} columns against {}); an ensemble combines models of the same columns, e.g. fits of one table with different --seed",
-                path.display(),
-                at.display(),
-                m.columns().len(),
-                first.columns().len()
-            )));
-        }
-        out.push(m);
-    }
-    Ok(out)
 }
 
 /// Generates rows from the model and compares them with the rows of `path`.

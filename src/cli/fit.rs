@@ -4,7 +4,8 @@ use std::path::PathBuf;
 
 use clap::Args;
 use neural_sde::{
-    AdamWConfig, LatentConfig, MlpConfig, OptimizerConfig, SolverConfig, TrainConfig, Trainer,
+    AdamWConfig, EnsembleTrainer, History, LatentConfig, MlpConfig, OptimizerConfig, SolverConfig,
+    TrainConfig, TrainReport,
 };
 
 use neural_sde::collective::on_root;
@@ -54,11 +55,19 @@ pub struct FitArgs {
     /// Euler–Maruyama steps of the latent path on [0, 1].
     #[arg(long, default_value_t = 20, value_parser = positive_usize)]
     steps: usize,
-    /// Epochs to train (each at least 50 optimiser steps, and at most 1,000: on big tables an
-    /// epoch is 1,000 steps of freshly shuffled rows); the learning-rate schedule is planned
-    /// over them. With --resume: the epoch to stop at [default: 300; with --resume,
-    /// the checkpoint's plan]. Resumed runs keep the checkpoint's schedule; epochs past its
-    /// plan run at the final learning rate.
+    /// Models to fit, with seeds --seed, --seed + 1, …, written to --out as one ensemble:
+    /// the mixture of their densities, which every other command reads. They train in turn,
+    /// one epoch each, sharing --time-budget [default: 2 for tables of under 50,000 rows, where
+    /// two fits of half the epochs beat one of all of them on every table measured (benchmarks
+    /// document), otherwise 1; with --resume, the checkpoint's].
+    #[arg(long, value_parser = positive_usize)]
+    members: Option<usize>,
+    /// Epochs to train each member (each at least 50 optimiser steps, and at most 1,000: on
+    /// big tables an epoch is 1,000 steps of freshly shuffled rows); the learning-rate
+    /// schedule is planned over them. With --resume: the epoch to stop at [default: 300
+    /// divided among the members, 150 each for two; with --resume, the checkpoint's plan].
+    /// Resumed runs keep the checkpoint's schedule; epochs past its plan run at the final
+    /// learning rate.
     #[arg(long, value_parser = positive_usize)]
     epochs: Option<usize>,
     /// End this run after this many epochs in all, keeping the schedule planned over
@@ -82,14 +91,16 @@ pub struct FitArgs {
     /// the fit keeps (0: no average; 0.99 averages over about a hundred steps).
     #[arg(long, default_value_t = 0.99, value_parser = fraction, allow_negative_numbers = true)]
     weight_average: f64,
-    /// Seed of every random draw (split, minibatches, weights, noise).
+    /// Seed of every random draw (split, minibatches, weights, noise) of the first member;
+    /// member i has seed --seed + i - 1.
     #[arg(long, default_value_t = 0)]
     seed: u64,
     /// Share of rows held out to measure the validation ELBO (early stopping; computed each
     /// epoch on a seeded subset of at most 2,048 of them).
     #[arg(long, default_value_t = 0.2, value_parser = fraction, allow_negative_numbers = true)]
     validation_fraction: f64,
-    /// Stop training after this many seconds and keep the best model so far.
+    /// Stop training after this many seconds (all members together) and keep the best
+    /// models so far.
     #[arg(long, default_value_t = 90.0, value_parser = positive_f64, allow_negative_numbers = true)]
     time_budget: f64,
     /// Write the per-epoch history (CSV) here.
@@ -140,20 +151,20 @@ pub fn run(a: FitArgs, threads: Option<usize>) -> Result<(), Failure> {
         let ready = prepare(&a, &group, threads);
         let (trainer, dims, rows, table) = group.agree(ready)?;
         let mut trainer = trainer
-            .in_group(group.handle())
+            .in_group(|| group.handle())
             .map_err(|e| group.settle(e))?;
         finish(&a, &group, &mut trainer, (dims, rows), table)
     })();
     group.finish(result)
 }
 
-/// Loads the table and builds (or resumes) the trainer: everything that can fail on one
-/// process alone before the processes train together.
+/// Loads the table and builds (or resumes) the members' trainers: everything that can fail
+/// on one process alone before the processes train together.
 fn prepare(
     a: &FitArgs,
     group: &Group,
     threads: Option<usize>,
-) -> Result<(Trainer, usize, usize, Option<neural_sde::Table>), Failure> {
+) -> Result<(EnsembleTrainer, usize, usize, Option<neural_sde::Table>), Failure> {
     Files::default()
         .input("data file", a.data.as_deref())
         .input("checkpoint to resume", a.resume.as_deref())
@@ -161,6 +172,17 @@ fn prepare(
         .output("--history", a.history.as_deref())
         .output("--plot", a.plot.as_deref())
         .check()?;
+    if let (Some(m), true) = (a.members, a.resume.is_some()) {
+        return Err(Failure::input(format!(
+            "--members {m} cannot be given with --resume: a resumed fit keeps the checkpoint's members"
+        )));
+    }
+    if let Some(m) = a.members.filter(|&m| m > neural_sde::MAX_MEMBERS) {
+        return Err(Failure::input(format!(
+            "--members {m} is more than the {} an ensemble may hold; fit fewer",
+            neural_sde::MAX_MEMBERS
+        )));
+    }
     let header = super::header_line(a.header, a.no_header)?;
     let table = match &a.resume {
         // Resuming reads the table with the checkpoint's column types.
@@ -190,11 +212,8 @@ fn prepare(
             )?
         }
     };
-    let batch_size = a.batch_size.unwrap_or(if table.n_rows() >= BIG_TABLE_ROWS {
-        1024
-    } else {
-        64
-    });
+    let big = table.n_rows() >= BIG_TABLE_ROWS;
+    let batch_size = a.batch_size.unwrap_or(if big { 1024 } else { 64 });
     let default_threads = if batch_size >= PARALLEL_BATCH {
         super::cores()
     } else {
@@ -203,8 +222,8 @@ fn prepare(
     super::set_threads(threads, default_threads)?;
     let trainer = match &a.resume {
         Some(ck) => {
-            let mut t = Trainer::resume(ck, &table)?;
-            let plan = t.planned_epochs();
+            let mut t = EnsembleTrainer::resume(ck, &table)?;
+            let plan = t.members()[0].planned_epochs();
             let until = a.stop_after.or(a.epochs).unwrap_or(plan);
             if until > plan && group.is_root() {
                 eprintln!(
@@ -212,10 +231,12 @@ fn prepare(
                     plan + 1
                 );
             }
-            t.set_epochs(until.max(t.state().epoch));
+            let reached = t.members().iter().map(|m| m.state().epoch).max();
+            t.set_epochs(until.max(reached.unwrap_or(0)));
             t
         }
         None => {
+            let members = a.members.unwrap_or(if big { 1 } else { DEFAULT_MEMBERS });
             let mlp = MlpConfig {
                 width: a.hidden,
                 depth: a.depth,
@@ -233,7 +254,7 @@ fn prepare(
                 ..LatentConfig::default()
             };
             let train = TrainConfig {
-                epochs: a.epochs.unwrap_or(300),
+                epochs: a.epochs.unwrap_or(DEFAULT_EPOCHS.div_ceil(members).max(1)),
                 batch_size,
                 optimizer: OptimizerConfig {
                     adamw: AdamWConfig {
@@ -249,7 +270,7 @@ fn prepare(
                 validation_fraction: a.validation_fraction,
                 ..TrainConfig::default()
             };
-            let mut t = Trainer::new(&table, model, train)?;
+            let mut t = EnsembleTrainer::new(&table, model, train, members)?;
             if let Some(k) = a.stop_after {
                 t.set_epochs(k);
             }
@@ -261,51 +282,61 @@ fn prepare(
     if let Some(every) = a.checkpoint_every {
         trainer.checkpoint_every(every, &a.out)?;
     }
-    // The trainer keeps its coded rows: the table is kept only for a refit on all rows or a
-    // second start.
-    let refit = trainer.config().refit && trainer.config().validation_fraction > 0.0;
-    let keep = refit || trainer.state().mixture_by_bic;
+    // The trainers keep their coded rows: the table is kept only for a refit on all rows or
+    // a second start.
+    let first = &trainer.members()[0];
+    let refit = first.config().refit && first.config().validation_fraction > 0.0;
+    let keep = refit || trainer.members().iter().any(|m| m.state().mixture_by_bic);
     let (dims, rows) = (table.n_cols(), table.n_rows());
     Ok((trainer, dims, rows, keep.then_some(table)))
 }
+
+/// Members of the default fit of tables under [`BIG_TABLE_ROWS`] rows.
+const DEFAULT_MEMBERS: usize = 2;
+
+/// Epochs of a default fit, divided among its members.
+const DEFAULT_EPOCHS: usize = 300;
 
 /// Trains, writes the model and its history (process 0), and reports.
 fn finish(
     a: &FitArgs,
     group: &Group,
-    trainer: &mut Trainer,
+    trainer: &mut EnsembleTrainer,
     (dims, rows): (usize, usize),
     table: Option<neural_sde::Table>,
 ) -> Result<(), Failure> {
     let root = group.is_root();
     if root {
-        for w in trainer.warnings() {
+        for w in trainer.members().iter().flat_map(|m| m.warnings()) {
             eprintln!("warning: {w}");
         }
     }
-    let jac = trainer.model().scaler().log_jacobian();
+    let jac = trainer.members()[0].model().scaler().log_jacobian();
     let outcome = fit_with_progress(trainer, root, dims, a.time_budget);
-    let (mut report, failure) = match outcome {
+    let (mut reports, failure) = match outcome {
         Ok(r) => (Some(r), None),
-        // Keep what was learned: after a training failure the trainer holds the best weights.
+        // Keep what was learned: after a training failure the trainers hold the best weights.
         Err(neural_sde::Error::Training(why)) => (None, Some(why)),
         Err(e) => return Err(group.settle(e)),
     };
-    let mut start_note = None;
-    if let (Some(r), Some(t)) = (&mut report, &table) {
-        start_note = compare_starts(a, group, trainer, t, r, dims)?;
+    let mut start_notes = Vec::new();
+    if let (Some(r), Some(t)) = (&mut reports, &table) {
+        start_notes = compare_starts(a, group, trainer, t, r, dims)?;
     }
     trainer.save(&a.out).map_err(|e| group.settle(e))?;
-    let collective = trainer.group();
+    let collective = trainer.members()[0].group();
+    let histories: Vec<&History> = trainer.members().iter().map(|m| m.history()).collect();
     if let Some(h) = &a.history {
         let what = format!("the history {}", h.display());
-        on_root(collective, &what, || trainer.history().write_csv(h))
-            .map_err(|e| group.settle(e))?;
+        on_root(collective, &what, || {
+            History::write_members_csv(&histories, h)
+        })
+        .map_err(|e| group.settle(e))?;
     }
     if let Some(p) = &a.plot {
         let what = format!("the plot {}", p.display());
         on_root(collective, &what, || {
-            neural_sde::plot::elbo_curve_svg(trainer.history(), dims, p)
+            neural_sde::plot::elbo_curves_svg(&histories, dims, p)
         })
         .map_err(|e| group.settle(e))?;
     }
@@ -321,46 +352,70 @@ fn finish(
             a.out.display()
         ))));
     }
-    let report = report.ok_or_else(|| Failure::input("training produced no report"))?;
-    let state = trainer.state();
-    let how = report.termination;
-    println!(
-        "fitted {dims} columns of {rows} rows in {:.1} s: {how} after {} epochs; kept epoch {}",
-        report.seconds, report.epochs, report.best_epoch
-    );
-    if let Some(best) = state.best_elbo {
-        let what = if a.validation_fraction > 0.0 {
-            "validation"
-        } else {
-            "training"
-        };
+    let reports = reports.ok_or_else(|| Failure::input("training produced no report"))?;
+    let seconds = reports.iter().map(|r| r.seconds).fold(0.0, f64::max);
+    let several = reports.len() > 1;
+    if several {
         println!(
-            "best {what} ELBO per dimension: {:.4} nats (data units)",
-            (best + jac) / dims as f64
+            "fitted {dims} columns of {rows} rows in {seconds:.1} s: an ensemble of {} models (seeds {} to {})",
+            reports.len(),
+            trainer.members()[0].config().seed,
+            trainer.members()[reports.len() - 1].config().seed
         );
     }
-    if let Some(note) = start_note {
-        println!("{note}");
+    let what = if a.validation_fraction > 0.0 {
+        "validation"
+    } else {
+        "training"
+    };
+    for (i, (report, member)) in reports.iter().zip(trainer.members()).enumerate() {
+        let how = report.termination;
+        let mut line = if several {
+            format!(
+                "member {}: {how} after {} epochs; kept epoch {}",
+                i + 1,
+                report.epochs,
+                report.best_epoch
+            )
+        } else {
+            format!(
+                "fitted {dims} columns of {rows} rows in {:.1} s: {how} after {} epochs; kept epoch {}",
+                report.seconds, report.epochs, report.best_epoch
+            )
+        };
+        if let Some(best) = member.state().best_elbo {
+            line.push_str(&format!(
+                "{}best {what} ELBO per dimension: {:.4} nats (data units)",
+                if several { "; " } else { "\n" },
+                (best + jac) / dims as f64
+            ));
+        }
+        println!("{line}");
+        if let Some(Some(note)) = start_notes.get(i) {
+            println!("{note}");
+        }
     }
-    if let (Some(t), true) = (&table, trainer.config().refit) {
-        refit(a, group, trainer, t, report.seconds, dims)?;
+    if let (Some(t), true) = (&table, trainer.members()[0].config().refit) {
+        refit(a, group, trainer, t, seconds, dims)?;
     }
     println!("model written to {}", a.out.display());
     Ok(())
 }
 
-/// Trains `trainer`, showing a progress bar (against `budget` seconds) on process 0.
+/// Trains the members, showing a progress bar (against `budget` seconds) on process 0,
+/// fed by the first member.
 fn fit_with_progress(
-    trainer: &mut Trainer,
+    trainer: &mut EnsembleTrainer,
     root: bool,
     dims: usize,
     budget: f64,
-) -> neural_sde::Result<neural_sde::TrainReport> {
-    let jac = trainer.model().scaler().log_jacobian();
+) -> neural_sde::Result<Vec<TrainReport>> {
+    let first = &mut trainer.members_mut()[0];
+    let jac = first.model().scaler().log_jacobian();
     let bar = if root {
         let progress = super::progress::Progress::new(dims, jac, Some(budget));
         let bar = progress.bar_clone();
-        trainer.add_observer(Box::new(progress));
+        first.add_observer(Box::new(progress));
         Some(bar)
     } else {
         None
@@ -372,95 +427,126 @@ fn fit_with_progress(
     outcome
 }
 
-/// Beside a fit that started from the Gaussian mixture BIC chose, trains the fit from one
-/// Gaussian within what is left of the time budget and keeps the model with the higher
-/// validation log-likelihood (see `Trainer::gaussian_start`); `report` becomes the kept
-/// fit's, with the seconds of both. Returns the line that reports the choice.
+/// Beside each member whose fit started from the Gaussian mixture BIC chose, trains the fit
+/// from one Gaussian (all of them together, within what is left of the time budget) and
+/// keeps the model with the higher validation log-likelihood (see
+/// `EnsembleTrainer::compare_starts`); a member's report becomes the kept fit's, with the
+/// seconds of both. Returns, per member, the line that reports the choice.
 fn compare_starts(
     a: &FitArgs,
     group: &Group,
-    trainer: &mut Trainer,
+    trainer: &mut EnsembleTrainer,
     table: &neural_sde::Table,
-    report: &mut neural_sde::TrainReport,
+    reports: &mut [TrainReport],
     dims: usize,
-) -> Result<Option<String>, Failure> {
+) -> Result<Vec<Option<String>>, Failure> {
     let root = group.is_root();
-    let Some(other) = trainer.gaussian_start(table).map_err(|e| group.settle(e))? else {
-        return Ok(None);
-    };
-    let left = a.time_budget - report.seconds;
-    // Every process of a job trains the second start, or none: process 0's clock decides.
+    let none = vec![None; reports.len()];
+    if !trainer.members().iter().any(|m| m.state().mixture_by_bic) {
+        return Ok(none);
+    }
+    let components: Vec<usize> = trainer
+        .members()
+        .iter()
+        .map(|m| m.model().latent().config().noise_components.unwrap_or(1))
+        .collect();
+    let spent = reports.iter().map(|r| r.seconds).fold(0.0, f64::max);
+    let left = a.time_budget - spent;
+    // Every process of a job trains the second starts, or none: process 0's clock decides.
     if !group.root_decides(left >= 1.0)? {
         if root {
             eprintln!("note: the time budget is spent; the fit from one Gaussian was not tried");
         }
-        return Ok(None);
+        return Ok(none);
     }
-    let mut other = other
-        .in_group(group.handle())
-        .map_err(|e| group.settle(e))?;
-    other
-        .set_time_budget(Some(left))
-        .map_err(|e| group.settle(e))?;
-    let jac = trainer.model().scaler().log_jacobian();
-    let outcome = fit_with_progress(&mut other, root, dims, left);
-    let other_report = match outcome {
-        Ok(r) => r,
+    let jac = trainer.members()[0].model().scaler().log_jacobian();
+    let mut bar = None;
+    let outcome = trainer.compare_starts(table, Some(left), |t| {
+        let mut t = t.in_group(group.handle())?;
+        if root && bar.is_none() {
+            let progress = super::progress::Progress::new(dims, jac, Some(left));
+            bar = Some(progress.bar_clone());
+            t.add_observer(Box::new(progress));
+        }
+        Ok(t)
+    });
+    if let Some(bar) = bar {
+        bar.finish_and_clear();
+    }
+    let comparisons = match outcome {
+        Ok(c) => c,
         Err(neural_sde::Error::Training(why)) => {
             if root {
                 eprintln!(
-                    "note: the fit from one Gaussian failed ({why}); the mixture start is kept"
+                    "note: a fit from one Gaussian failed ({why}); the mixture starts are kept"
                 );
             }
-            return Ok(None);
+            return Ok(none);
         }
         Err(e) => return Err(group.settle(e)),
     };
-    let components = trainer
-        .model()
-        .latent()
-        .config()
-        .noise_components
-        .unwrap_or(1);
-    let seconds = report.seconds + other_report.seconds;
-    let (mixture, gaussian) = trainer.keep_better(other).map_err(|e| group.settle(e))?;
-    let gaussian_won = gaussian > mixture;
-    if gaussian_won {
-        *report = other_report;
-    }
-    report.seconds = seconds;
     let per_dim = |ll: f64| (ll + jac) / dims as f64;
-    let (mixture, gaussian) = (per_dim(mixture), per_dim(gaussian));
-    let kept = if gaussian_won {
-        "one Gaussian"
-    } else {
-        "the mixture"
-    };
-    Ok(Some(format!(
-        "started from a Gaussian mixture of {components} components (chosen by BIC) and from one Gaussian: validation log-likelihood per dimension {mixture:.4} against {gaussian:.4} nats (importance-weighted, {} paths per row); kept the fit from {kept}",
-        neural_sde::VALIDATION_LOGLIK_PATHS
-    )))
+    let mut notes = none;
+    for (i, c) in comparisons.iter().enumerate() {
+        let Some(c) = c else { continue };
+        let member = &trainer.members()[i];
+        if c.gaussian_kept {
+            let r = &mut reports[i];
+            r.epochs = member.state().epoch;
+            r.best_epoch = member.state().best_epoch;
+            r.best_elbo = member.state().best_elbo;
+            r.termination = member.state().finished.unwrap_or(r.termination);
+        }
+        reports[i].seconds += c.seconds;
+        let components = components[i];
+        let kept = if c.gaussian_kept {
+            "one Gaussian"
+        } else {
+            "the mixture"
+        };
+        let whose = if reports.len() > 1 {
+            format!("member {}: ", i + 1)
+        } else {
+            String::new()
+        };
+        notes[i] = Some(format!(
+            "{whose}started from a Gaussian mixture of {components} components (chosen by BIC) and from one Gaussian: validation log-likelihood per dimension {:.4} against {:.4} nats (importance-weighted, {} paths per row); kept the fit from {kept}",
+            per_dim(c.mixture),
+            per_dim(c.gaussian),
+            neural_sde::VALIDATION_LOGLIK_PATHS
+        ));
+    }
+    Ok(notes)
 }
 
-/// Trains the final model on every row for the epochs validation chose, within what is left
-/// of the time budget, and writes it over the validated one (see `Trainer::refit`).
+/// Trains the final models on every row for the epochs validation chose (each member its
+/// own), within what is left of the time budget, and writes them over the validated ones
+/// (see `Trainer::refit`).
 fn refit(
     a: &FitArgs,
     group: &Group,
-    trainer: &Trainer,
+    trainer: &EnsembleTrainer,
     table: &neural_sde::Table,
     seconds: f64,
     dims: usize,
 ) -> Result<(), Failure> {
     let root = group.is_root();
-    let Some(r) = trainer.refit(table).map_err(|e| group.settle(e))? else {
-        return Ok(());
-    };
-    let epochs = r.config().epochs;
+    let mut refits = Vec::new();
+    for m in trainer.members() {
+        match m.refit(table).map_err(|e| group.settle(e))? {
+            Some(r) => refits.push(r),
+            None => return Ok(()),
+        }
+    }
+    let epochs: Vec<usize> = refits.iter().map(|r| r.config().epochs).collect();
     // The fit's time per epoch, for as many epochs; the epochs of a small table have a fixed
     // number of steps, so the extra held-out rows do not lengthen them.
-    let per_epoch = trainer.state().seconds / trainer.state().epoch.max(1) as f64;
-    let need = per_epoch * epochs as f64 * 1.1;
+    let need: f64 = trainer
+        .members()
+        .iter()
+        .zip(&epochs)
+        .map(|(m, &e)| m.state().seconds / m.state().epoch.max(1) as f64 * e as f64 * 1.1)
+        .sum();
     let left = a.time_budget - seconds;
     // Every process of a job refits, or none: process 0's clock decides.
     if !group.root_decides(need <= left)? {
@@ -472,7 +558,9 @@ fn refit(
         }
         return Ok(());
     }
-    let mut r = r.in_group(group.handle()).map_err(|e| group.settle(e))?;
+    let mut r = EnsembleTrainer::from_trainers(refits)
+        .and_then(|r| r.in_group(|| group.handle()))
+        .map_err(|e| group.settle(e))?;
     // Started only when its estimate fits in what is left; its own cap is the whole budget,
     // which the checkpoint records (the seconds left differ from run to run).
     r.set_time_budget(Some(a.time_budget))
@@ -482,13 +570,15 @@ fn refit(
             .map_err(|e| group.settle(e))?;
     }
     let outcome = fit_with_progress(&mut r, root, dims, left);
-    let report = outcome.map_err(|e| group.settle(e))?;
+    let reports = outcome.map_err(|e| group.settle(e))?;
     r.save(&a.out).map_err(|e| group.settle(e))?;
     if root {
+        let epochs: Vec<String> = epochs.iter().map(|e| e.to_string()).collect();
         println!(
-            "refitted on all {} rows for {epochs} epochs (the epochs validation chose) in {:.1} s",
+            "refitted on all {} rows for {} epochs (the epochs validation chose) in {:.1} s",
             table.n_rows(),
-            report.seconds
+            epochs.join(" and "),
+            reports.iter().map(|r| r.seconds).fold(0.0, f64::max)
         );
     }
     Ok(())

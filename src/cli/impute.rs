@@ -3,9 +3,10 @@
 use std::path::PathBuf;
 
 use clap::Args;
-use neural_sde::{ImputeOptions, TabularModel};
+use neural_sde::ImputeOptions;
 
 use super::files::Files;
+use super::models::Scored;
 use super::{positive_usize, Failure};
 
 #[derive(Debug, Args)]
@@ -42,7 +43,8 @@ pub fn run(a: ImputeArgs) -> Result<(), Failure> {
         .input("data file", Some(&a.data))
         .output("--out", Some(&a.out))
         .check()?;
-    let model = TabularModel::load(&a.model)?;
+    let scored = Scored::load(&a.model, &[])?;
+    let model = scored.first();
     let header = super::header_line(a.header, a.no_header)?;
     let table = super::load_table_with(
         Some(&a.data),
@@ -61,7 +63,7 @@ pub fn run(a: ImputeArgs) -> Result<(), Failure> {
         draws: a.draws,
         seed: a.seed,
     };
-    let result = model.impute(&table, options)?;
+    let result = scored.impute(&table, options)?;
     let missing = table.values().iter().filter(|v| v.is_nan()).count();
     if a.draws == 1 {
         result.tables[0].write_csv(&a.out)?;
@@ -78,7 +80,7 @@ pub fn run(a: ImputeArgs) -> Result<(), Failure> {
         if a.draws == 1 { "copy" } else { "copies" },
         a.out.display()
     );
-    report_ess(&result.ess, a.paths, |i| {
+    report_ess(&result.ess, a.paths * scored.count(), |i| {
         table.row(i).iter().any(|v| v.is_nan())
     });
     Ok(())

@@ -13,7 +13,8 @@ pub struct InspectArgs {
 }
 
 pub fn run(a: InspectArgs) -> Result<(), Failure> {
-    let info = neural_sde::inspect_checkpoint(&a.model)?;
+    let all = neural_sde::inspect_members(&a.model)?;
+    let info = &all[0];
     println!("file           {}", a.model.display());
     println!(
         "written by     neural-sde {} (format {} v{})",
@@ -48,6 +49,25 @@ pub fn run(a: InspectArgs) -> Result<(), Failure> {
             info.schema.missing_markers.join(", ")
         );
     }
+    if all.len() > 1 {
+        let weights: Vec<String> = all.iter().map(|m| format!("{:.4}", m.weight)).collect();
+        println!(
+            "members        {} (an ensemble: the mixture of their densities, weights {})",
+            all.len(),
+            weights.join(", ")
+        );
+    }
+    for (i, member) in all.iter().enumerate() {
+        if all.len() > 1 {
+            println!("member {}", i + 1);
+        }
+        member_lines(member);
+    }
+    Ok(())
+}
+
+/// The lines about one model: its size, configuration and training.
+fn member_lines(info: &neural_sde::CheckpointSummary) {
     println!("parameters     {}", info.parameters);
     println!(
         "model          {}",
@@ -79,5 +99,4 @@ pub fn run(a: InspectArgs) -> Result<(), Failure> {
         }
         _ => println!("training       no training state stored"),
     }
-    Ok(())
 }

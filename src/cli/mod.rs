@@ -6,6 +6,7 @@ mod fit;
 mod group;
 mod impute;
 mod inspect;
+mod models;
 mod progress;
 mod sample;
 

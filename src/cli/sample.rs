@@ -3,9 +3,9 @@
 use std::path::PathBuf;
 
 use clap::Args;
-use neural_sde::{Ensemble, TabularModel};
 
 use super::files::Files;
+use super::models::Scored;
 use super::{positive_usize, Failure};
 
 #[derive(Debug, Args)]
@@ -45,9 +45,9 @@ pub struct SampleArgs {
     /// conditional.
     #[arg(long, default_value_t = 256, value_parser = positive_usize)]
     paths: usize,
-    /// Generate from the equal-weight ensemble of the model and this one (a model of the same
-    /// columns, e.g. fitted with another --seed): each row comes from a member drawn at
-    /// random. Repeat for more models. Not with --given.
+    /// Generate from the ensemble of the model and this one (a model file of the same
+    /// columns, e.g. fitted with another --seed), each file weighing the same: each row comes
+    /// from a member drawn at random. Repeat for more models.
     #[arg(long = "with", value_name = "MODEL")]
     with: Vec<PathBuf>,
 }
@@ -64,13 +64,8 @@ pub fn run(a: SampleArgs) -> Result<(), Failure> {
         .output("--out", Some(&a.out))
         .output("--plot", a.plot.as_deref())
         .check()?;
-    if !a.with.is_empty() && !a.given.is_empty() {
-        return Err(Failure::input(
-            "--given draws from one model's conditional distribution; leave out --with, or --given",
-        ));
-    }
-    let model = TabularModel::load(&a.model)?;
-    let others = super::evaluate::load_members(&a.model, &model, &a.with)?;
+    let scored = Scored::load(&a.model, &a.with)?;
+    let model = scored.first();
     let reference = if a.data.is_some() || a.demo {
         Some(super::load_table_with(
             a.data.as_deref(),
@@ -82,13 +77,9 @@ pub fn run(a: SampleArgs) -> Result<(), Failure> {
     } else {
         None
     };
-    let first = if !others.is_empty() {
-        let mut members = vec![model];
-        members.extend(others);
-        Ensemble::new(members)?.generate_csv(&a.out, a.rows, a.seed)?
-    } else if a.given.is_empty() {
+    let first = if a.given.is_empty() {
         // Streamed to the file; the plot shows the first rows.
-        model.generate_csv(&a.out, a.rows, a.seed)?
+        scored.generate_csv(&a.out, a.rows, a.seed)?
     } else {
         let mut given = Vec::new();
         for g in &a.given {
@@ -105,14 +96,14 @@ pub fn run(a: SampleArgs) -> Result<(), Failure> {
             draws: 1,
             seed: a.seed,
         };
-        let result = model.generate_given(a.rows, &given, options)?;
+        let result = scored.generate_given(a.rows, &given, options)?;
         let t = result
             .tables
             .into_iter()
             .next()
             .ok_or_else(|| Failure::input("no rows drawn"))?;
         t.write_csv(&a.out)?;
-        super::impute::report_ess(&result.ess, a.paths, |_| true);
+        super::impute::report_ess(&result.ess, a.paths * scored.count(), |_| true);
         t
     };
     if let Some(p) = &a.plot {

@@ -92,16 +92,21 @@ pub(crate) fn write(
     crate::util::fs::write_atomic(path, &bytes)
 }
 
-/// Reads the whole file, checks the container and its `format`, and parses the header as
-/// `H`. Returns the raw bytes (for [`read_tensors`]), the crate version that wrote the file
-/// and the header.
+/// A file's container: its bytes (for [`read_tensors`]), the crate version that wrote it, the
+/// kind of object it holds and that object's header JSON, unparsed.
+pub(crate) struct RawFile {
+    pub bytes: Vec<u8>,
+    pub crate_version: String,
+    pub format: String,
+    pub header: Box<serde_json::value::RawValue>,
+}
+
+/// Reads the whole file and checks the container and its format version, leaving the
+/// kind of object (`format`) to the caller.
 ///
 /// # Errors
 /// [`Error::Checkpoint`] naming what is wrong with the file.
-pub(crate) fn read_header<H: DeserializeOwned>(
-    path: &Path,
-    format: &str,
-) -> Result<(Vec<u8>, String, H)> {
+pub(crate) fn read_raw(path: &Path) -> Result<RawFile> {
     let bytes = crate::util::fs::read_file(path).map_err(|r| bad(path, r))?;
     // Validates the whole layout, so a truncated file is caught here.
     safetensors::SafeTensors::deserialize(&bytes).map_err(|e| {
@@ -144,15 +149,6 @@ pub(crate) fn read_header<H: DeserializeOwned>(
             .map_err(|e| bad(path, format!("the header is not valid ({e})")))?,
         },
     };
-    if container.format != format {
-        return Err(bad(
-            path,
-            format!(
-                "format is {:?}, expected \"{format}\": this file was not written by neural-sde as that kind of object",
-                crate::util::text::clip(&container.format)
-            ),
-        ));
-    }
     if !["1", FORMAT_VERSION].contains(&container.format_version.as_str()) {
         return Err(bad(
             path,
@@ -162,9 +158,64 @@ pub(crate) fn read_header<H: DeserializeOwned>(
             ),
         ));
     }
-    let header: H = serde_json::from_str(container.header.get())
-        .map_err(|e| bad(path, format!("the header is not valid ({e})")))?;
-    Ok((bytes, container.crate_version, header))
+    Ok(RawFile {
+        bytes,
+        crate_version: container.crate_version,
+        format: container.format,
+        header: container.header,
+    })
+}
+
+/// One object stored in a file: the file's path and bytes, the object's header JSON and the
+/// prefix of its tensors' names (empty for a file that holds one object; `member{i}.` for
+/// the members of an ensemble).
+#[derive(Clone, Copy)]
+pub(crate) struct Stored<'a> {
+    pub path: &'a Path,
+    pub bytes: &'a [u8],
+    pub header: &'a str,
+    pub prefix: &'a str,
+}
+
+/// Refuses a file whose `format` is not `format`.
+///
+/// # Errors
+/// [`Error::Checkpoint`] saying both kinds.
+pub(crate) fn expect_format(path: &Path, found: &str, format: &str) -> Result<()> {
+    if found != format {
+        return Err(bad(
+            path,
+            format!(
+                "format is {:?}, expected \"{format}\": this file was not written by neural-sde as that kind of object",
+                crate::util::text::clip(found)
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// Parses a header's JSON text as `H`.
+///
+/// # Errors
+/// [`Error::Checkpoint`] naming the parse error.
+pub(crate) fn parse_header<H: DeserializeOwned>(path: &Path, text: &str) -> Result<H> {
+    serde_json::from_str(text).map_err(|e| bad(path, format!("the header is not valid ({e})")))
+}
+
+/// Reads the whole file, checks the container and its `format`, and parses the header as
+/// `H`. Returns the raw bytes (for [`read_tensors`]), the crate version that wrote the file
+/// and the header.
+///
+/// # Errors
+/// [`Error::Checkpoint`] naming what is wrong with the file.
+pub(crate) fn read_header<H: DeserializeOwned>(
+    path: &Path,
+    format: &str,
+) -> Result<(Vec<u8>, String, H)> {
+    let raw = read_raw(path)?;
+    expect_format(path, &raw.format, format)?;
+    let header = parse_header(path, raw.header.get())?;
+    Ok((raw.bytes, raw.crate_version, header))
 }
 
 /// Number of values in each tensor of `bytes`, by name (no tensor is decoded).
@@ -172,6 +223,18 @@ pub(crate) fn read_header<H: DeserializeOwned>(
 /// # Errors
 /// [`Error::Checkpoint`] for an invalid container.
 pub(crate) fn tensor_sizes(path: &Path, bytes: &[u8]) -> Result<Vec<(String, usize)>> {
+    tensor_sizes_under(path, bytes, "")
+}
+
+/// As [`tensor_sizes`] for the tensors whose names start with `prefix`, named without it.
+///
+/// # Errors
+/// [`Error::Checkpoint`] for an invalid container.
+pub(crate) fn tensor_sizes_under(
+    path: &Path,
+    bytes: &[u8],
+    prefix: &str,
+) -> Result<Vec<(String, usize)>> {
     let st = safetensors::SafeTensors::deserialize(bytes).map_err(|e| {
         bad(
             path,
@@ -181,7 +244,10 @@ pub(crate) fn tensor_sizes(path: &Path, bytes: &[u8]) -> Result<Vec<(String, usi
     Ok(st
         .tensors()
         .iter()
-        .map(|(n, v)| (n.clone(), v.shape().iter().product()))
+        .filter_map(|(n, v)| {
+            n.strip_prefix(prefix)
+                .map(|n| (n.to_string(), v.shape().iter().product()))
+        })
         .collect())
 }
 
@@ -193,6 +259,19 @@ pub(crate) fn read_tensors(
     path: &Path,
     bytes: &[u8],
     dtype: DType,
+) -> Result<HashMap<String, Tensor>> {
+    read_tensors_under(path, bytes, dtype, "")
+}
+
+/// As [`read_tensors`] for the tensors whose names start with `prefix`, named without it.
+///
+/// # Errors
+/// As [`read_tensors`].
+pub(crate) fn read_tensors_under(
+    path: &Path,
+    bytes: &[u8],
+    dtype: DType,
+    prefix: &str,
 ) -> Result<HashMap<String, Tensor>> {
     let st = safetensors::SafeTensors::deserialize(bytes).map_err(|e| {
         bad(
@@ -207,6 +286,9 @@ pub(crate) fn read_tensors(
     let dev = Device::Cpu;
     let mut tensors = HashMap::new();
     for (name, view) in st.tensors() {
+        let Some(name) = name.strip_prefix(prefix).map(str::to_string) else {
+            continue;
+        };
         if view.dtype() != st_dtype {
             return Err(bad(
                 path,
@@ -271,7 +353,21 @@ pub(crate) fn check_implied_size(
     implied: Option<u64>,
     state_prefixes: &[&str],
 ) -> Result<()> {
-    let held: u64 = tensor_sizes(path, bytes)?
+    check_implied_size_under(path, bytes, implied, state_prefixes, "")
+}
+
+/// As [`check_implied_size`] for the tensors whose names start with `prefix`.
+///
+/// # Errors
+/// As [`check_implied_size`].
+pub(crate) fn check_implied_size_under(
+    path: &Path,
+    bytes: &[u8],
+    implied: Option<u64>,
+    state_prefixes: &[&str],
+    prefix: &str,
+) -> Result<()> {
+    let held: u64 = tensor_sizes_under(path, bytes, prefix)?
         .into_iter()
         .filter(|(n, _)| !state_prefixes.iter().any(|p| n.starts_with(p)))
         .map(|(_, s)| s as u64)

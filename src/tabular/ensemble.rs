@@ -5,6 +5,7 @@ use std::path::Path;
 use rand::RngCore;
 
 use crate::error::{Error, Result};
+use crate::tabular::ensemble_file;
 use crate::tabular::evaluation::{EvalOptions, EvalSums, Evaluation};
 use crate::tabular::fitted::TabularModel;
 use crate::tabular::mixture::log_sum_exp;
@@ -111,6 +112,69 @@ impl Ensemble {
     /// The members, in the order given.
     pub fn members(&self) -> &[TabularModel] {
         &self.members
+    }
+
+    /// The members, in the order given, without their weights.
+    pub fn into_members(self) -> Vec<TabularModel> {
+        self.members
+    }
+
+    /// Loads a model file: an ensemble's file written by `neural-sde fit`,
+    /// [`Ensemble::save`] or [`crate::EnsembleTrainer::save`], or a single model's file (an
+    /// ensemble of one).
+    ///
+    /// # Errors
+    /// [`Error::Checkpoint`] naming what is wrong with the file (and the member).
+    pub fn load(path: impl AsRef<Path>) -> Result<Self> {
+        use crate::nn::checkpoint::{expect_format, read_raw, Stored};
+        let path = path.as_ref();
+        let raw = read_raw(path)?;
+        if raw.format != ensemble_file::ENSEMBLE_FORMAT {
+            expect_format(path, &raw.format, crate::tabular::fitted::FORMAT)?;
+            let stored = Stored {
+                path,
+                bytes: &raw.bytes,
+                header: raw.header.get(),
+                prefix: "",
+            };
+            return Self::new(vec![TabularModel::read_stored(stored, None)?.0]);
+        }
+        let header = ensemble_file::read_header(path, &raw)?;
+        let members = ensemble_file::read_members(path, &raw, &header, |stored| {
+            Ok(TabularModel::read_stored(stored, None)?.0)
+        })?;
+        Self::with_weights(members, &header.weights).map_err(|e| Error::Checkpoint {
+            path: path.to_path_buf(),
+            reason: e.to_string(),
+        })
+    }
+
+    /// Saves the members' models (no training state) and weights atomically: an ensemble's
+    /// file, or with one member that member's own file ([`TabularModel::save`]).
+    ///
+    /// # Errors
+    /// [`Error::Io`] or [`Error::Checkpoint`] if it cannot be written.
+    pub fn save(&self, path: impl AsRef<Path>) -> Result<()> {
+        let path = path.as_ref();
+        if let [one] = self.members.as_slice() {
+            return one.save(path);
+        }
+        let parts = self
+            .members
+            .iter()
+            .map(|m| {
+                Ok(ensemble_file::MemberParts {
+                    tensors: m.tensors()?,
+                    header: serde_json::value::to_raw_value(&m.header())?,
+                })
+            })
+            .collect::<Result<Vec<_>>>()?;
+        ensemble_file::write(
+            path,
+            parts,
+            &self.weights,
+            crate::nn::checkpoint::parses_as::<crate::tabular::fitted::ModelHeader>,
+        )
     }
 
     /// The members' weights (summing to 1).

@@ -423,12 +423,32 @@ impl TabularModel {
         path: &Path,
         factory: Option<&PriorFactory>,
     ) -> Result<(Self, HashMap<String, Tensor>, Timing)> {
+        let raw = crate::nn::checkpoint::read_raw(path)?;
+        crate::tabular::ensemble_file::refuse_ensemble(path, &raw)?;
+        crate::nn::checkpoint::expect_format(path, &raw.format, FORMAT)?;
+        Self::read_stored(
+            crate::nn::checkpoint::Stored {
+                path,
+                bytes: &raw.bytes,
+                header: raw.header.get(),
+                prefix: "",
+            },
+            factory,
+        )
+    }
+
+    /// As [`TabularModel::read`] for one object of a file (see
+    /// [`crate::nn::checkpoint::Stored`]).
+    pub(crate) fn read_stored(
+        stored: crate::nn::checkpoint::Stored<'_>,
+        factory: Option<&PriorFactory>,
+    ) -> Result<(Self, HashMap<String, Tensor>, Timing)> {
+        let (path, bytes) = (stored.path, stored.bytes);
         let bad = |reason: String| Error::Checkpoint {
             path: path.to_path_buf(),
             reason,
         };
-        let (bytes, _, header): (_, _, ModelHeader) =
-            crate::nn::checkpoint::read_header(path, FORMAT)?;
+        let header: ModelHeader = crate::nn::checkpoint::parse_header(path, stored.header)?;
         header.check().map_err(bad)?;
         match (header.model_config.custom_prior, factory.is_some()) {
             (true, false) => {
@@ -459,17 +479,19 @@ impl TabularModel {
             .validate_for(layout)
             .map_err(|e| bad(format!("the stored configuration is invalid ({e})")))?;
         if !header.model_config.custom_prior {
-            crate::nn::checkpoint::check_implied_size(
+            crate::nn::checkpoint::check_implied_size_under(
                 path,
-                &bytes,
+                bytes,
                 header.model_config.parameter_count(layout),
                 &TRAINING_PREFIXES,
+                stored.prefix,
             )?;
         }
-        let file = crate::nn::checkpoint::read_tensors(
+        let file = crate::nn::checkpoint::read_tensors_under(
             path,
-            &bytes,
+            bytes,
             header.model_config.precision.dtype(),
+            stored.prefix,
         )?;
         // Rebuild the model, then copy every weight in after checking its shape.
         let model = LatentModel::build(&header.model_config, layout, 0, factory)

@@ -141,6 +141,17 @@ impl TabularModel {
     /// # Ok::<(), neural_sde::Error>(())
     /// ```
     pub fn impute(&self, table: &Table, options: ImputeOptions) -> Result<Imputation> {
+        Ok(self.impute_with_evidence(table, options)?.0)
+    }
+
+    /// As [`TabularModel::impute`], also returning each row's estimate of `log p(y_o)`, the
+    /// log-density of its observed cells (data units; the log of the mean importance weight
+    /// of its paths), which weighs the members of an [`crate::Ensemble`] given the row.
+    pub(crate) fn impute_with_evidence(
+        &self,
+        table: &Table,
+        options: ImputeOptions,
+    ) -> Result<(Imputation, Vec<f64>)> {
         options.validate()?;
         let table = self.matching(table)?;
         let d = self.columns.len();
@@ -170,6 +181,7 @@ impl TabularModel {
         let mut tables = vec![table.values().to_vec(); options.draws];
         let mut cells = Vec::new();
         let mut ess = Vec::with_capacity(table.n_rows());
+        let mut evidence = Vec::with_capacity(table.n_rows());
         let cont = self.coder.continuous().to_vec();
         let cat = self.coder.categorical().to_vec();
         let ow = layout.output_width();
@@ -202,6 +214,14 @@ impl TabularModel {
                         detail: "every posterior path has zero or non-finite weight; the row may lie far outside the training data".into(),
                     });
                 }
+                // The observed continuous cells' Jacobian from standardised to data units.
+                let jacobian: f64 = cont
+                    .iter()
+                    .enumerate()
+                    .filter(|(_, &j)| !row[j].is_nan())
+                    .map(|(c, _)| self.scaler.scale[c].ln())
+                    .sum();
+                evidence.push(max + (total / k as f64).ln() - jacobian);
                 w.iter_mut().for_each(|x| *x /= total);
                 ess.push(1.0 / w.iter().map(|x| x * x).sum::<f64>());
                 let outs = &terms.outputs[at * ow..(at + k) * ow];
@@ -277,7 +297,7 @@ impl TabularModel {
             .into_iter()
             .map(|v| self.table_of(v))
             .collect::<Result<Vec<_>>>()?;
-        Ok(Imputation { tables, cells, ess })
+        Ok((Imputation { tables, cells, ess }, evidence))
     }
 
     /// Draws `rows` rows from the model conditioned on the cells `given` (column name and
@@ -296,6 +316,12 @@ impl TabularModel {
         given: &[(String, String)],
         options: ImputeOptions,
     ) -> Result<Imputation> {
+        self.impute(&self.given_table(rows, given)?, options)
+    }
+
+    /// `rows` copies of the row holding the cells `given` (see
+    /// [`TabularModel::generate_given`]), every other cell missing.
+    pub(crate) fn given_table(&self, rows: usize, given: &[(String, String)]) -> Result<Table> {
         let bad = |reason: String| Error::Data {
             path: std::path::PathBuf::from("--given"),
             reason,
@@ -349,7 +375,7 @@ impl TabularModel {
         for _ in 0..rows {
             values.extend_from_slice(&row);
         }
-        self.impute(&self.table_of(values)?, options)
+        self.table_of(values)
     }
 
     /// The components of the continuous cells' observation noise (one, with offset zero,

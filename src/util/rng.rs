@@ -82,4 +82,6 @@ pub(crate) mod streams {
     pub const IMPUTE_DRAWS: u64 = 10;
     /// Which member of an ensemble generates each row, and the members' seeds.
     pub const ENSEMBLE: u64 = 11;
+    /// Member of an ensemble that completes each row of each imputed draw.
+    pub const ENSEMBLE_IMPUTE: u64 = 12;
 }

@@ -106,6 +106,34 @@ impl History {
         crate::util::fs::write_atomic(path.as_ref(), self.to_csv().as_bytes())
     }
 
+    /// The histories of an ensemble's members as one CSV table: [`History::to_csv`]'s
+    /// columns after a first column `member` (numbered from 1); with one member, that
+    /// member's own table.
+    pub fn members_csv(histories: &[&History]) -> String {
+        if let [one] = histories {
+            return one.to_csv();
+        }
+        let mut out = String::new();
+        for (m, h) in histories.iter().enumerate() {
+            for (i, line) in h.to_csv().lines().enumerate() {
+                match (i, m) {
+                    (0, 0) => out.push_str(&format!("member,{line}\n")),
+                    (0, _) => {}
+                    _ => out.push_str(&format!("{},{line}\n", m + 1)),
+                }
+            }
+        }
+        out
+    }
+
+    /// Writes [`History::members_csv`] (atomically).
+    ///
+    /// # Errors
+    /// [`crate::Error::Io`] if the file cannot be written.
+    pub fn write_members_csv(histories: &[&History], path: impl AsRef<Path>) -> Result<()> {
+        crate::util::fs::write_atomic(path.as_ref(), Self::members_csv(histories).as_bytes())
+    }
+
     /// Writes JSON (atomically).
     ///
     /// # Errors

@@ -444,9 +444,31 @@ impl Trainer {
     }
 
     fn resume_from(path: &Path, table: &Table, prior: Option<&PriorFactory>) -> Result<Self> {
-        let (model, mut file, timing) = TabularModel::read(path, prior)?;
-        let (_, _, training): (_, _, TrainingHeader) =
-            crate::nn::checkpoint::read_header(path, crate::tabular::fitted::FORMAT)?;
+        let raw = crate::nn::checkpoint::read_raw(path)?;
+        crate::tabular::ensemble_file::refuse_ensemble(path, &raw)?;
+        crate::nn::checkpoint::expect_format(path, &raw.format, crate::tabular::fitted::FORMAT)?;
+        Self::resume_stored(
+            crate::nn::checkpoint::Stored {
+                path,
+                bytes: &raw.bytes,
+                header: raw.header.get(),
+                prefix: "",
+            },
+            table,
+            prior,
+        )
+    }
+
+    /// As [`Trainer::resume`] for one object of a file (see
+    /// [`crate::nn::checkpoint::Stored`]).
+    pub(crate) fn resume_stored(
+        stored: crate::nn::checkpoint::Stored<'_>,
+        table: &Table,
+        prior: Option<&PriorFactory>,
+    ) -> Result<Self> {
+        let path = stored.path;
+        let (model, mut file, timing) = TabularModel::read_stored(stored, prior)?;
+        let training: TrainingHeader = crate::nn::checkpoint::parse_header(path, stored.header)?;
         let missing = || Error::Checkpoint {
             path: path.to_path_buf(),
             reason: "it holds a model but no training state; train a new model instead of resuming"
@@ -837,6 +859,11 @@ impl Trainer {
         restore(self.model.model.varmap(), &self.best)
     }
 
+    /// Whether an epoch is in progress (a checkpoint cannot be taken then).
+    pub(crate) fn mid_epoch(&self) -> bool {
+        self.epoch_run.is_some()
+    }
+
     /// Ends training and returns the model (with the weights it currently has).
     pub fn into_model(self) -> TabularModel {
         self.model
@@ -1151,6 +1178,16 @@ impl Trainer {
     /// # Errors
     /// As [`Trainer::step`].
     pub fn fit(&mut self) -> Result<TrainReport> {
+        self.begin_run();
+        while self.state.finished.is_none() {
+            self.step()?;
+        }
+        self.end_run()
+    }
+
+    /// Starts a run of [`Trainer::fit`]: the clock of the time budget, and a trainer stopped
+    /// by its budget or a request continues.
+    pub(crate) fn begin_run(&mut self) {
         self.clock = Instant::now();
         if matches!(
             self.state.finished,
@@ -1158,9 +1195,11 @@ impl Trainer {
         ) {
             self.state.finished = None;
         }
-        while self.state.finished.is_none() {
-            self.step()?;
-        }
+    }
+
+    /// Ends a run of [`Trainer::fit`] once training has finished: keeps the weights training
+    /// reached (to continue from) and restores the best ones.
+    pub(crate) fn end_run(&mut self) -> Result<TrainReport> {
         // The best weights differ from the ones training reached unless the last epoch was
         // the best and no average stands in for its weights.
         let differ = self.state.best_epoch != self.state.epoch || self.average.weights().is_some();
@@ -1213,6 +1252,18 @@ impl Trainer {
     }
 
     fn write_checkpoint(&self, path: &Path) -> Result<()> {
+        let (tensors, header) = self.checkpoint_parts()?;
+        crate::nn::checkpoint::write(
+            path,
+            crate::tabular::fitted::FORMAT,
+            tensors,
+            &header,
+            checkpoint_parses_back,
+        )
+    }
+
+    /// The tensors and the header of this trainer's checkpoint.
+    pub(crate) fn checkpoint_parts(&self) -> Result<(Vec<(String, Tensor)>, CheckpointHeader)> {
         let mut tensors = self.model.tensors()?;
         for (n, m) in self.optimizer.state_tensors() {
             tensors.push((format!("optim.{n}"), m));
@@ -1237,18 +1288,16 @@ impl Trainer {
                 optimizer_steps: Some(self.optimizer.steps()),
             },
         };
-        use crate::nn::checkpoint::parses_as;
-        crate::nn::checkpoint::write(
-            path,
-            crate::tabular::fitted::FORMAT,
-            tensors,
-            &header,
-            |text| {
-                parses_as::<crate::tabular::fitted::ModelHeader>(text)?;
-                parses_as::<TrainingHeader>(text)
-            },
-        )
+        Ok((tensors, header))
     }
+}
+
+/// The `parses_back` check of a trainer's checkpoint header (see
+/// [`crate::nn::checkpoint::write`]).
+pub(crate) fn checkpoint_parses_back(text: &str) -> serde_json::Result<()> {
+    use crate::nn::checkpoint::parses_as;
+    parses_as::<crate::tabular::fitted::ModelHeader>(text)?;
+    parses_as::<TrainingHeader>(text)
 }
 
 /// The trainer's part of a checkpoint header, beside the model's.
@@ -1261,7 +1310,7 @@ pub(crate) struct TrainingHeader {
 
 /// The whole header of a training checkpoint: one flat JSON object.
 #[derive(serde::Serialize)]
-struct CheckpointHeader {
+pub(crate) struct CheckpointHeader {
     #[serde(flatten)]
     model: crate::tabular::fitted::ModelHeader,
     #[serde(flatten)]

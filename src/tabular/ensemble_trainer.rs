@@ -1,0 +1,329 @@
+//! Training several models of one table together: the members of an [`Ensemble`].
+
+use std::path::{Path, PathBuf};
+
+use crate::collective::on_root;
+use crate::error::{Error, Result};
+use crate::tabular::ensemble::Ensemble;
+use crate::tabular::ensemble_file::{self, MemberParts, ENSEMBLE_FORMAT, MAX_MEMBERS};
+use crate::tabular::model::LatentConfig;
+use crate::tabular::table::Table;
+
+use crate::tabular::train::{checkpoint_parses_back, TrainConfig, TrainReport, Trainer};
+
+/// Trains the members of an [`Ensemble`]: one [`Trainer`] per member, on the same table and
+/// settings, member `i` with seed `seed + i` (its own split, minibatches, start and noise).
+/// [`EnsembleTrainer::fit`] trains them in turn one epoch each, so that a time budget is
+/// shared evenly and a paused run ([`EnsembleTrainer::set_epochs`]) leaves every member at
+/// the same epoch. Its file ([`EnsembleTrainer::save`]) holds every member's training state,
+/// and [`EnsembleTrainer::resume`] continues it exactly; with one member it is a single
+/// trainer's checkpoint.
+///
+/// ```
+/// use neural_sde::{builtin_demo, EvalOptions, EnsembleTrainer, LatentConfig, TrainConfig};
+///
+/// let table = builtin_demo()?.take_rows(&(0..200).collect::<Vec<_>>())?;
+/// let cfg = TrainConfig { epochs: 1, ..TrainConfig::default() };
+/// let mut trainer = EnsembleTrainer::new(&table, LatentConfig::default(), cfg, 2)?;
+/// let reports = trainer.fit()?;
+/// assert_eq!(reports.len(), 2);
+/// let ensemble = trainer.into_ensemble()?;
+/// let e = ensemble.evaluate(&table, EvalOptions::new(8, 0))?;
+/// assert!(e.loglik_per_dim.is_finite());
+/// # Ok::<(), neural_sde::Error>(())
+/// ```
+#[derive(Debug)]
+pub struct EnsembleTrainer {
+    members: Vec<Trainer>,
+    periodic: Option<(usize, PathBuf)>,
+}
+
+/// The validation log-likelihoods of two fits of one member (see
+/// [`EnsembleTrainer::compare_starts`]).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct StartComparison {
+    /// The member's fit, from the start BIC chose (standardised units, per row).
+    pub mixture: f64,
+    /// The fit from one Gaussian.
+    pub gaussian: f64,
+    /// Whether the fit from one Gaussian was kept.
+    pub gaussian_kept: bool,
+    /// Seconds the fit from one Gaussian trained.
+    pub seconds: f64,
+}
+
+impl EnsembleTrainer {
+    /// `members` trainers of `table` (as [`Trainer::new`]), member `i` with seed
+    /// `train_cfg.seed + i` (wrapping).
+    ///
+    /// # Errors
+    /// [`Error::InvalidConfig`] for 0 members or more than [`MAX_MEMBERS`]; as
+    /// [`Trainer::new`].
+    pub fn new(
+        table: &Table,
+        model_cfg: LatentConfig,
+        train_cfg: TrainConfig,
+        members: usize,
+    ) -> Result<Self> {
+        check_count(members)?;
+        let trainers = (0..members)
+            .map(|i| {
+                let cfg = TrainConfig {
+                    seed: train_cfg.seed.wrapping_add(i as u64),
+                    ..train_cfg.clone()
+                };
+                Trainer::new(table, model_cfg.clone(), cfg)
+            })
+            .collect::<Result<Vec<_>>>()?;
+        Self::from_trainers(trainers)
+    }
+
+    /// Trains `members` together (trainers of the same columns).
+    ///
+    /// # Errors
+    /// [`Error::InvalidConfig`] for no trainer or more than [`MAX_MEMBERS`];
+    /// [`Error::Data`] when their models' columns differ.
+    pub fn from_trainers(members: Vec<Trainer>) -> Result<Self> {
+        check_count(members.len())?;
+        if let Some(m) = members
+            .iter()
+            .position(|t| !t.model().same_columns_as(members[0].model()))
+        {
+            return Err(Error::Data {
+                path: "<ensemble>".into(),
+                reason: format!(
+                    "trainer {m} models other columns than trainer 0; the members of an ensemble model the same columns"
+                ),
+            });
+        }
+        Ok(Self {
+            members,
+            periodic: None,
+        })
+    }
+
+    /// Continues training from a file written by [`EnsembleTrainer::save`] (or by
+    /// [`Trainer::save`]: an ensemble of one), on the same table.
+    ///
+    /// # Errors
+    /// As [`Trainer::resume`] for each member, naming it.
+    pub fn resume(path: impl AsRef<Path>, table: &Table) -> Result<Self> {
+        let path = path.as_ref();
+        let raw = crate::nn::checkpoint::read_raw(path)?;
+        if raw.format != ENSEMBLE_FORMAT {
+            return Self::from_trainers(vec![Trainer::resume(path, table)?]);
+        }
+        let header = ensemble_file::read_header(path, &raw)?;
+        let members = ensemble_file::read_members(path, &raw, &header, |stored| {
+            Trainer::resume_stored(stored, table, None)
+        })?;
+        Self::from_trainers(members)
+    }
+
+    /// Trains every member data-parallel in a group of processes (see [`Trainer::in_group`]),
+    /// each member with its own handle from `handle`.
+    ///
+    /// # Errors
+    /// As [`Trainer::in_group`].
+    pub fn in_group(
+        self,
+        mut handle: impl FnMut() -> Box<dyn crate::collective::Collective>,
+    ) -> Result<Self> {
+        let members = self
+            .members
+            .into_iter()
+            .map(|m| m.in_group(handle()))
+            .collect::<Result<Vec<_>>>()?;
+        Ok(Self { members, ..self })
+    }
+
+    /// The members' trainers.
+    pub fn members(&self) -> &[Trainer] {
+        &self.members
+    }
+
+    /// The members' trainers, to set up each (observers, a group of processes).
+    pub fn members_mut(&mut self) -> &mut [Trainer] {
+        &mut self.members
+    }
+
+    /// Ends training and returns the members' trainers.
+    pub fn into_trainers(self) -> Vec<Trainer> {
+        self.members
+    }
+
+    /// Stops every member once [`EnsembleTrainer::fit`] has run `seconds` (wall clock, all
+    /// members together; `None`: no limit).
+    ///
+    /// # Errors
+    /// As [`Trainer::set_time_budget`].
+    pub fn set_time_budget(&mut self, seconds: Option<f64>) -> Result<()> {
+        self.members
+            .iter_mut()
+            .try_for_each(|m| m.set_time_budget(seconds))
+    }
+
+    /// Ends each member's training at epoch `epochs` (see [`Trainer::set_epochs`]).
+    pub fn set_epochs(&mut self, epochs: usize) {
+        for m in &mut self.members {
+            m.set_epochs(epochs);
+        }
+    }
+
+    /// Writes the file ([`EnsembleTrainer::save`]) whenever a member ends an epoch that is a
+    /// multiple of `epochs`, once every member has trained it.
+    ///
+    /// # Errors
+    /// [`Error::InvalidConfig`] for `epochs == 0`.
+    pub fn checkpoint_every(&mut self, epochs: usize, path: impl Into<PathBuf>) -> Result<()> {
+        if epochs == 0 {
+            return Err(Error::config(
+                "checkpoint_every",
+                0,
+                "write a checkpoint every 1 or more epochs",
+            ));
+        }
+        self.periodic = Some((epochs, path.into()));
+        Ok(())
+    }
+
+    /// Trains every member until its stop rule ends it, one epoch of each member in turn,
+    /// then restores each member's best weights; returns each member's report (its seconds
+    /// are the wall time of the whole run).
+    ///
+    /// # Errors
+    /// As [`Trainer::fit`] for a member; [`Error::Io`] or [`Error::Checkpoint`] when a
+    /// periodic checkpoint cannot be written.
+    pub fn fit(&mut self) -> Result<Vec<TrainReport>> {
+        for m in &mut self.members {
+            m.begin_run();
+        }
+        loop {
+            let mut trained = false;
+            let mut due = false;
+            for i in 0..self.members.len() {
+                let m = &mut self.members[i];
+                if m.state().finished.is_some() {
+                    continue;
+                }
+                trained = true;
+                if let Err(e) = m.run_epoch() {
+                    // The failed member has restored its best weights; so do the others,
+                    // so that what is saved next holds every member's best model.
+                    for (j, other) in self.members.iter_mut().enumerate() {
+                        if j != i && !other.mid_epoch() {
+                            other.end_run()?;
+                        }
+                    }
+                    return Err(e);
+                }
+                if let Some((every, _)) = &self.periodic {
+                    due |= self.members[i].state().epoch.is_multiple_of(*every);
+                }
+            }
+            if !trained {
+                break;
+            }
+            if let (true, Some((_, path))) = (due, &self.periodic) {
+                self.save(path)?;
+            }
+        }
+        self.members.iter_mut().map(Trainer::end_run).collect()
+    }
+
+    /// The second part of the `fit` command's protocol, for each member whose
+    /// [`Trainer::gaussian_start`] offers a fit from one Gaussian: trains those fits together
+    /// (each first passed to `join`, which may put it in a group of processes or add
+    /// observers), within `time_budget` seconds, and keeps for each member the fit with the
+    /// higher validation log-likelihood ([`Trainer::keep_better`]). Returns, per member,
+    /// the comparison (`None` for a member with nothing to compare).
+    ///
+    /// # Errors
+    /// As [`Trainer::gaussian_start`], `join`, [`EnsembleTrainer::fit`] and
+    /// [`Trainer::keep_better`].
+    pub fn compare_starts(
+        &mut self,
+        table: &Table,
+        time_budget: Option<f64>,
+        mut join: impl FnMut(Trainer) -> Result<Trainer>,
+    ) -> Result<Vec<Option<StartComparison>>> {
+        let mut which = Vec::new();
+        let mut others = Vec::new();
+        for (i, m) in self.members.iter().enumerate() {
+            if let Some(other) = m.gaussian_start(table)? {
+                which.push(i);
+                others.push(join(other)?);
+            }
+        }
+        let mut out = vec![None; self.members.len()];
+        if others.is_empty() {
+            return Ok(out);
+        }
+        let mut together = Self::from_trainers(others)?;
+        together.set_time_budget(time_budget)?;
+        let reports = together.fit()?;
+        for ((i, other), report) in which.into_iter().zip(together.members).zip(reports) {
+            let (mixture, gaussian) = self.members[i].keep_better(other)?;
+            out[i] = Some(StartComparison {
+                mixture,
+                gaussian,
+                gaussian_kept: gaussian > mixture,
+                seconds: report.seconds,
+            });
+        }
+        Ok(out)
+    }
+
+    /// Writes every member's checkpoint (as [`Trainer::save`]) into one file, atomically; with
+    /// one member the file is that member's checkpoint. In a group of processes only process
+    /// 0 writes, and every process returns the outcome.
+    ///
+    /// # Errors
+    /// As [`Trainer::save`].
+    pub fn save(&self, path: impl AsRef<Path>) -> Result<()> {
+        let path = path.as_ref();
+        if let [one] = self.members.as_slice() {
+            return one.save(path);
+        }
+        if self.members.iter().any(Trainer::mid_epoch) {
+            return Err(Error::Training(format!(
+                "cannot save {} in the middle of an epoch",
+                path.display()
+            )));
+        }
+        let what = format!("the checkpoint {}", path.display());
+        on_root(self.members[0].group(), &what, || {
+            let parts = self
+                .members
+                .iter()
+                .map(|m| {
+                    let (tensors, header) = m.checkpoint_parts()?;
+                    let header = serde_json::value::to_raw_value(&header)?;
+                    Ok(MemberParts { tensors, header })
+                })
+                .collect::<Result<Vec<_>>>()?;
+            let weights = vec![1.0; self.members.len()];
+            ensemble_file::write(path, parts, &weights, checkpoint_parses_back)
+        })
+    }
+
+    /// The equal-weight ensemble of the members' models (with the weights they have now: the
+    /// best ones once [`EnsembleTrainer::fit`] has returned).
+    ///
+    /// # Errors
+    /// As [`Ensemble::new`].
+    pub fn into_ensemble(self) -> Result<Ensemble> {
+        Ensemble::new(self.members.into_iter().map(Trainer::into_model).collect())
+    }
+}
+
+fn check_count(members: usize) -> Result<()> {
+    if members == 0 {
+        return Err(Error::config(
+            "members",
+            0,
+            "an ensemble needs at least one member",
+        ));
+    }
+    crate::util::limits::at_most("members", members, MAX_MEMBERS, "members of an ensemble")
+}
