@@ -157,7 +157,7 @@ fn iris_beats_full_covariance_gaussian() {
     assert!((c.model - c.gaussian - c.gain).abs() < 1e-9, "{c:?}");
     // The family contains the full-covariance mixtures and the fit can start from the one BIC
     // chooses (two components here, −0.444 per dimension, also the best mixture): not behind
-    // it by two standard errors. Measured ahead, +0.022 ± 0.026 per dimension (a single fit
+    // it by two standard errors. Measured ahead, +0.029 ± 0.031 per dimension (a single fit
     // was −0.019 ± 0.027); beating it by two standard errors is the open target of the
     // benchmarks document, out of reach of 30 held-out rows unless the lead is over 0.05.
     assert!(c.full_gain > -2.0 * c.full_se, "{c:?}");
@@ -202,7 +202,7 @@ fn diabetes_beats_full_covariance_gaussian_and_the_best_mixture() {
     // chooses, four components, 2.780, is the best). The default protocol starts from such
     // a mixture and trains it at a third of the learning rate, keeping the running average
     // of its weights; the default ensemble of two such fits is ahead of the mixture by more
-    // than two standard errors, the benchmarks document's target (measured +0.171 ± 0.041
+    // than two standard errors, the benchmarks document's target (measured +0.144 ± 0.035
     // per dimension, 4.2 standard errors; the mean of two single fits' figures was +0.132 ±
     // 0.046).
     let t = baseline::diabetes();
@@ -234,7 +234,8 @@ fn demo_table_beats_full_covariance_gaussian() {
     // The mixture start brings the night-time spike of `light_klux` that the Gaussian start
     // cannot reach (−2.87 per dimension before it): not behind the full-covariance mixture
     // BIC chooses (−2.568, also the best mixture) by two standard errors; measured ahead,
-    // +0.011 ± 0.006 (a single fit of 40 epochs was +0.013 ± 0.008).
+    // +0.017 ± 0.007 (a single fit of 40 epochs was +0.013 ± 0.008). The full defaults are
+    // ahead in some seeds and behind in others (benchmarks document).
     assert!(c.full_gain > -2.0 * c.full_se, "{c:?}");
     assert!(c.best_gain > -2.0 * c.best_se, "{c:?}");
 }

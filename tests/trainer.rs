@@ -507,3 +507,34 @@ fn periodic_checkpoints_are_written_and_resume() {
     // Epoch 3 is not a multiple of 2: the file still holds epoch 2.
     assert_eq!(Trainer::resume(&p, &t).unwrap().state().epoch, 2);
 }
+
+#[test]
+fn ensemble_members_train_in_turn_as_their_own_trainers_would() {
+    // Training the members in turn changes nothing in each: member i equals the trainer
+    // made alone with seed + i, split seed and validation block i (no shared state; common
+    // practice, no source). One member is the plain trainer.
+    let t = table(300);
+    let (model, cfg) = small();
+    let mut together = EnsembleTrainer::new(&t, model.clone(), cfg.clone(), 2).unwrap();
+    let reports = together.fit().unwrap();
+    assert_eq!(reports.len(), 2);
+    for (i, member) in together.members().iter().enumerate() {
+        let alone_cfg = TrainConfig {
+            seed: cfg.seed + i as u64,
+            split_seed: Some(cfg.seed),
+            validation_block: i,
+            ..cfg.clone()
+        };
+        assert_eq!(member.config(), &alone_cfg);
+        let mut alone = Trainer::new(&t, model.clone(), alone_cfg).unwrap();
+        alone.fit().unwrap();
+        assert_eq!(weight_values(member), weight_values(&alone));
+        assert_eq!(member.state().best_elbo, alone.state().best_elbo);
+    }
+    let mut one = EnsembleTrainer::new(&t, model.clone(), cfg.clone(), 1).unwrap();
+    one.fit().unwrap();
+    let mut plain = Trainer::new(&t, model, cfg).unwrap();
+    plain.fit().unwrap();
+    assert_eq!(weight_values(&one.members()[0]), weight_values(&plain));
+    assert_eq!(one.members()[0].config(), plain.config());
+}

@@ -12,7 +12,10 @@ use crate::tabular::table::Table;
 use crate::tabular::train::{checkpoint_parses_back, TrainConfig, TrainReport, Trainer};
 
 /// Trains the members of an [`Ensemble`]: one [`Trainer`] per member, on the same table and
-/// settings, member `i` with seed `seed + i` (its own split, minibatches, start and noise).
+/// settings, member `i` with seed `seed + i` (its own minibatches, start and noise) and
+/// holding out block `i` of one shuffle of the rows ([`TrainConfig::split_seed`],
+/// [`TrainConfig::validation_block`]), so that the members validate on different rows and,
+/// with a fifth held out and up to five members, every row trains at least one member.
 /// [`EnsembleTrainer::fit`] trains them in turn one epoch each, so that a time budget is
 /// shared evenly and a paused run ([`EnsembleTrainer::set_epochs`]) leaves every member at
 /// the same epoch. Its file ([`EnsembleTrainer::save`]) holds every member's training state,
@@ -54,7 +57,9 @@ pub struct StartComparison {
 
 impl EnsembleTrainer {
     /// `members` trainers of `table` (as [`Trainer::new`]), member `i` with seed
-    /// `train_cfg.seed + i` (wrapping).
+    /// `train_cfg.seed + i` (wrapping), split seed `train_cfg.split_seed` (or else
+    /// `train_cfg.seed`) and validation block `train_cfg.validation_block + i`; one member is
+    /// `Trainer::new` with `train_cfg` itself.
     ///
     /// # Errors
     /// [`Error::InvalidConfig`] for 0 members or more than [`MAX_MEMBERS`]; as
@@ -68,8 +73,13 @@ impl EnsembleTrainer {
         check_count(members)?;
         let trainers = (0..members)
             .map(|i| {
+                if members == 1 {
+                    return Trainer::new(table, model_cfg.clone(), train_cfg.clone());
+                }
                 let cfg = TrainConfig {
                     seed: train_cfg.seed.wrapping_add(i as u64),
+                    split_seed: Some(train_cfg.split_seed.unwrap_or(train_cfg.seed)),
+                    validation_block: train_cfg.validation_block.wrapping_add(i),
                     ..train_cfg.clone()
                 };
                 Trainer::new(table, model_cfg.clone(), cfg)

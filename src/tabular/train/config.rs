@@ -77,6 +77,21 @@ pub struct TrainConfig {
     /// 0.005 (see the benchmarks document).
     #[serde(default)]
     pub weight_average: f64,
+    /// Seed of the training/validation split (`None`: [`TrainConfig::seed`]). The members of
+    /// an [`crate::EnsembleTrainer`] share one, so that they hold out blocks of one shuffle.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub split_seed: Option<u64>,
+    /// Which block of the shuffled rows is held out: block `b` is the `b`-th run of
+    /// `round(n · validation_fraction)` rows of the split's shuffle, wrapping around at its
+    /// end (0: the first). [`crate::EnsembleTrainer`] gives member `i` block `i`, so that
+    /// the members hold out different rows and every row trains at least one member while
+    /// the blocks do not wrap.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub validation_block: usize,
+}
+
+fn is_zero(v: &usize) -> bool {
+    *v == 0
 }
 
 fn one() -> f64 {
@@ -102,6 +117,8 @@ impl Default for TrainConfig {
             refit: false,
             mixture_learning_rate_scale: 1.0 / 3.0,
             weight_average: 0.99,
+            split_seed: None,
+            validation_block: 0,
         }
     }
 }

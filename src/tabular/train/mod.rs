@@ -146,7 +146,12 @@ fn stored_split(
     cfg: &TrainConfig,
     dtype: candle_core::DType,
 ) -> Result<(StoredRows, StoredRows)> {
-    let (train_idx, val_idx) = split_rows(table.n_rows(), cfg.validation_fraction, cfg.seed)?;
+    let (train_idx, val_idx) = split_rows(
+        table.n_rows(),
+        cfg.validation_fraction,
+        cfg.split_seed.unwrap_or(cfg.seed),
+        cfg.validation_block,
+    )?;
     let seen = |idx: Vec<usize>| -> Vec<usize> {
         idx.into_iter()
             .filter(|&i| table.row(i).iter().any(|v| !v.is_nan()))
@@ -296,7 +301,8 @@ impl Trainer {
         let (train_idx, val_idx) = split_rows(
             table.n_rows(),
             train_cfg.validation_fraction,
-            train_cfg.seed,
+            train_cfg.split_seed.unwrap_or(train_cfg.seed),
+            train_cfg.validation_block,
         )?;
         let d = coder.layout().continuous;
         if train_idx.len() <= d {
