@@ -302,7 +302,8 @@ fn every_command_explains_its_options_and_defaults() {
             "fit",
             vec![
                 "--time-budget",
-                "[default: 90]",
+                "[default: 180]",
+                "--members",
                 "--learning-rate",
                 "[default: 0.003]",
                 "--demo",
