@@ -9,10 +9,10 @@
 //! Picking the member by its summed path weights and then a path by its own weight is the
 //! self-normalised importance sampling of the pooled paths of every member.
 
-use crate::error::{Error, Result};
+use crate::error::Result;
 use crate::tabular::ensemble::Ensemble;
 use crate::tabular::fitted::TabularModel;
-use crate::tabular::impute::{CellEstimate, Imputation, ImputeOptions};
+use crate::tabular::impute::{check_imputed_cells, CellEstimate, Imputation, ImputeOptions};
 use crate::tabular::model::{pick, softmax};
 use crate::tabular::table::Table;
 use crate::util::rng::{key2, keyed_generator, streams, uniform};
@@ -26,28 +26,21 @@ impl Ensemble {
     /// effective sample size is that of the pooled paths, `1 / Σ_m r_m² / ess_m`.
     ///
     /// # Errors
-    /// As [`TabularModel::impute`] for each member; [`Error::InvalidConfig`] when the members'
+    /// As [`TabularModel::impute`] for each member; [`crate::Error::InvalidConfig`] when the members'
     /// draws together would hold more than [`crate::limits::MAX_IMPUTED_VALUES`] cells.
     pub fn impute(&self, table: &Table, options: ImputeOptions) -> Result<Imputation> {
         let members = self.members();
         if let [one] = members {
             return one.impute(table, options);
         }
-        let cells_held = members
-            .len()
-            .saturating_mul(options.draws)
-            .saturating_mul(table.values().len());
-        if cells_held > crate::util::limits::MAX_IMPUTED_VALUES {
-            return Err(Error::config(
-                "draws",
-                options.draws,
-                format!(
-                    "the {} members' draws would hold {cells_held} cells in memory, more than the {} allowed; draw fewer copies or impute the table in parts",
-                    members.len(),
-                    crate::util::limits::MAX_IMPUTED_VALUES
-                ),
-            ));
-        }
+        check_imputed_cells(
+            options.draws,
+            members
+                .len()
+                .saturating_mul(options.draws)
+                .saturating_mul(table.values().len()),
+            || format!("the {} members' draws", members.len()),
+        )?;
         let parts = members
             .iter()
             .map(|m| m.impute_with_evidence(table, options))

@@ -9,7 +9,7 @@ use crate::tabular::ensemble_file::{self, MemberParts, ENSEMBLE_FORMAT, MAX_MEMB
 use crate::tabular::model::LatentConfig;
 use crate::tabular::table::Table;
 
-use crate::tabular::train::{checkpoint_parses_back, TrainConfig, TrainReport, Trainer};
+use crate::tabular::train::{checkpoint_parses_back, periodic, TrainConfig, TrainReport, Trainer};
 
 /// Trains the members of an [`Ensemble`]: one [`Trainer`] per member, on the same table and
 /// settings, member `i` with seed `seed + i` (its own minibatches, start and noise) and
@@ -186,14 +186,7 @@ impl EnsembleTrainer {
     /// # Errors
     /// [`Error::InvalidConfig`] for `epochs == 0`.
     pub fn checkpoint_every(&mut self, epochs: usize, path: impl Into<PathBuf>) -> Result<()> {
-        if epochs == 0 {
-            return Err(Error::config(
-                "checkpoint_every",
-                0,
-                "write a checkpoint every 1 or more epochs",
-            ));
-        }
-        self.periodic = Some((epochs, path.into()));
+        self.periodic = Some(periodic(epochs, path.into())?);
         Ok(())
     }
 

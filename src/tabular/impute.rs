@@ -92,6 +92,30 @@ pub struct Imputation {
     pub ess: Vec<f64>,
 }
 
+/// Refuses an imputation of `draws` copies whose draws would hold `cells` cells (those of
+/// `what`) in memory, more than [`crate::limits::MAX_IMPUTED_VALUES`].
+///
+/// # Errors
+/// [`Error::InvalidConfig`] naming `draws`.
+pub(crate) fn check_imputed_cells(
+    draws: usize,
+    cells: usize,
+    what: impl FnOnce() -> String,
+) -> Result<()> {
+    let max = crate::util::limits::MAX_IMPUTED_VALUES;
+    if cells > max {
+        return Err(Error::config(
+            "draws",
+            draws,
+            format!(
+                "{} would hold {cells} cells in memory, more than the {max} allowed; draw fewer copies or impute the table in parts",
+                what()
+            ),
+        ));
+    }
+    Ok(())
+}
+
 /// Per-row work of imputation on the standardised scale.
 struct RowPlan {
     /// Missing continuous cells (positions among the continuous columns).
@@ -155,19 +179,17 @@ impl TabularModel {
         options.validate()?;
         let table = self.matching(table)?;
         let d = self.columns.len();
-        let values = options.draws.saturating_mul(table.values().len());
-        if values > crate::util::limits::MAX_IMPUTED_VALUES {
-            return Err(Error::config(
-                "draws",
-                options.draws,
+        check_imputed_cells(
+            options.draws,
+            options.draws.saturating_mul(table.values().len()),
+            || {
                 format!(
-                    "{} draws of {} rows × {d} columns would hold {values} cells in memory, more than the {} allowed; draw fewer copies or impute the table in parts",
+                    "{} draws of {} rows × {d} columns",
                     options.draws,
-                    table.n_rows(),
-                    crate::util::limits::MAX_IMPUTED_VALUES
-                ),
-            ));
-        }
+                    table.n_rows()
+                )
+            },
+        )?;
         let layout = self.coder.layout().clone();
         let dc = layout.continuous;
         let components = self.noise_components()?;

@@ -1228,14 +1228,7 @@ impl Trainer {
     /// # Errors
     /// [`Error::InvalidConfig`] for `epochs == 0`.
     pub fn checkpoint_every(&mut self, epochs: usize, path: impl Into<PathBuf>) -> Result<()> {
-        if epochs == 0 {
-            return Err(Error::config(
-                "checkpoint_every",
-                0,
-                "write a checkpoint every 1 or more epochs",
-            ));
-        }
-        self.periodic = Some((epochs, path.into()));
+        self.periodic = Some(periodic(epochs, path.into())?);
         Ok(())
     }
 
@@ -1296,6 +1289,21 @@ impl Trainer {
         };
         Ok((tensors, header))
     }
+}
+
+/// A periodic checkpoint's setting: every `epochs` epochs (at least 1) to `path`.
+///
+/// # Errors
+/// [`Error::InvalidConfig`] for `epochs == 0`.
+pub(crate) fn periodic(epochs: usize, path: PathBuf) -> Result<(usize, PathBuf)> {
+    if epochs == 0 {
+        return Err(Error::config(
+            "checkpoint_every",
+            0,
+            "write a checkpoint every 1 or more epochs",
+        ));
+    }
+    Ok((epochs, path))
 }
 
 /// The `parses_back` check of a trainer's checkpoint header (see
