@@ -75,10 +75,15 @@ fn tensors(p: &Path) -> BTreeMap<String, Vec<f64>> {
 fn weight_difference(a: &Path, b: &Path) -> f64 {
     let (ta, tb) = (tensors(a), tensors(b));
     let (mut diff, mut scale) = (0.0f64, 0.0f64);
+    // The default fit's file is an ensemble: a member's tensors are named `member{i}.…`.
     let weights = |n: &&String| {
+        let own = match n.strip_prefix("member") {
+            Some(rest) => rest.split_once('.').map_or(rest, |(_, name)| name),
+            None => n.as_str(),
+        };
         !["optim.", "best.", "last.", "average."]
             .iter()
-            .any(|p| n.starts_with(p))
+            .any(|p| own.starts_with(p))
     };
     for (name, va) in ta.iter().filter(|(n, _)| weights(n)) {
         let vb = &tb[name];
