@@ -132,6 +132,18 @@ fn default_max_validation_rows() -> usize {
 }
 
 impl TrainConfig {
+    /// The training and validation rows of a table of `n` rows: block
+    /// [`TrainConfig::validation_block`] of the shuffle seeded by
+    /// [`TrainConfig::split_seed`] (or else [`TrainConfig::seed`]) is held out.
+    pub(crate) fn split(&self, n: usize) -> Result<(Vec<usize>, Vec<usize>)> {
+        crate::tabular::split::split_rows(
+            n,
+            self.validation_fraction,
+            self.split_seed.unwrap_or(self.seed),
+            self.validation_block,
+        )
+    }
+
     /// Checks every field.
     ///
     /// # Errors

@@ -33,7 +33,6 @@ use crate::tabular::fitted::TabularModel;
 use crate::tabular::model::{LatentConfig, LatentModel, PriorFactory, RowLayout};
 use crate::tabular::scaler::Standardizer;
 use crate::tabular::schema::Schema;
-use crate::tabular::split::split_rows;
 use crate::tabular::table::Table;
 use crate::util::rng::{generator, key2, streams};
 use rows::StoredRows;
@@ -146,12 +145,7 @@ fn stored_split(
     cfg: &TrainConfig,
     dtype: candle_core::DType,
 ) -> Result<(StoredRows, StoredRows)> {
-    let (train_idx, val_idx) = split_rows(
-        table.n_rows(),
-        cfg.validation_fraction,
-        cfg.split_seed.unwrap_or(cfg.seed),
-        cfg.validation_block,
-    )?;
+    let (train_idx, val_idx) = cfg.split(table.n_rows())?;
     let seen = |idx: Vec<usize>| -> Vec<usize> {
         idx.into_iter()
             .filter(|&i| table.row(i).iter().any(|v| !v.is_nan()))
@@ -298,12 +292,7 @@ impl Trainer {
         let coder = RowCoder::new(table.kinds(), mask_input);
         model_cfg.validate_for(coder.layout())?;
         check_step_size(&model_cfg, coder.layout(), train_cfg.batch_size)?;
-        let (train_idx, val_idx) = split_rows(
-            table.n_rows(),
-            train_cfg.validation_fraction,
-            train_cfg.split_seed.unwrap_or(train_cfg.seed),
-            train_cfg.validation_block,
-        )?;
+        let (train_idx, val_idx) = train_cfg.split(table.n_rows())?;
         let d = coder.layout().continuous;
         if train_idx.len() <= d {
             return Err(Error::Data {
