@@ -203,8 +203,8 @@ fn diabetes_beats_full_covariance_gaussian_and_the_best_mixture() {
     // chooses, four components, 2.780, is the best). The default protocol starts from such
     // a mixture and trains it at a third of the learning rate, keeping the running average
     // of its weights; the default ensemble of two such fits is ahead of the mixture by more
-    // than two standard errors, the benchmarks document's target (measured +0.144 ± 0.035
-    // per dimension, 4.2 standard errors; the mean of two single fits' figures was +0.132 ±
+    // than two standard errors, the benchmarks document's target (measured +0.141 ± 0.035
+    // per dimension, 4.1 standard errors; the mean of two single fits' figures was +0.132 ±
     // 0.046).
     let t = baseline::diabetes();
     let c = compare(&t, defaults());
