@@ -101,6 +101,23 @@ pub(crate) struct RawFile {
     pub header: Box<serde_json::value::RawValue>,
 }
 
+impl RawFile {
+    /// The whole file as one object of kind `format`: its header, and its tensors under no
+    /// prefix.
+    ///
+    /// # Errors
+    /// [`Error::Checkpoint`] when the file holds another kind of object.
+    pub(crate) fn single<'a>(&'a self, path: &'a Path, format: &str) -> Result<Stored<'a>> {
+        expect_format(path, &self.format, format)?;
+        Ok(Stored {
+            path,
+            bytes: &self.bytes,
+            header: self.header.get(),
+            prefix: "",
+        })
+    }
+}
+
 /// Reads the whole file and checks the container and its format version, leaving the
 /// kind of object (`format`) to the caller.
 ///

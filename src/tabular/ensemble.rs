@@ -126,17 +126,10 @@ impl Ensemble {
     /// # Errors
     /// [`Error::Checkpoint`] naming what is wrong with the file (and the member).
     pub fn load(path: impl AsRef<Path>) -> Result<Self> {
-        use crate::nn::checkpoint::{expect_format, read_raw, Stored};
         let path = path.as_ref();
-        let raw = read_raw(path)?;
+        let raw = crate::nn::checkpoint::read_raw(path)?;
         if raw.format != ensemble_file::ENSEMBLE_FORMAT {
-            expect_format(path, &raw.format, crate::tabular::fitted::FORMAT)?;
-            let stored = Stored {
-                path,
-                bytes: &raw.bytes,
-                header: raw.header.get(),
-                prefix: "",
-            };
+            let stored = raw.single(path, crate::tabular::fitted::FORMAT)?;
             return Self::new(vec![TabularModel::read_stored(stored, None)?.0]);
         }
         let header = ensemble_file::read_header(path, &raw)?;

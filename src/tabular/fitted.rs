@@ -425,16 +425,7 @@ impl TabularModel {
     ) -> Result<(Self, HashMap<String, Tensor>, Timing)> {
         let raw = crate::nn::checkpoint::read_raw(path)?;
         crate::tabular::ensemble_file::refuse_ensemble(path, &raw)?;
-        crate::nn::checkpoint::expect_format(path, &raw.format, FORMAT)?;
-        Self::read_stored(
-            crate::nn::checkpoint::Stored {
-                path,
-                bytes: &raw.bytes,
-                header: raw.header.get(),
-                prefix: "",
-            },
-            factory,
-        )
+        Self::read_stored(raw.single(path, FORMAT)?, factory)
     }
 
     /// As [`TabularModel::read`] for one object of a file (see

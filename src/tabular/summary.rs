@@ -55,18 +55,11 @@ pub fn inspect_checkpoint(path: impl AsRef<Path>) -> Result<CheckpointSummary> {
 /// # Errors
 /// [`crate::error::Error::Checkpoint`] naming what is wrong with the file (and the member).
 pub fn inspect_members(path: impl AsRef<Path>) -> Result<Vec<CheckpointSummary>> {
-    use crate::nn::checkpoint::{expect_format, read_raw, Stored};
     use crate::tabular::ensemble_file;
     let path = path.as_ref();
-    let raw = read_raw(path)?;
+    let raw = crate::nn::checkpoint::read_raw(path)?;
     if raw.format != ensemble_file::ENSEMBLE_FORMAT {
-        expect_format(path, &raw.format, FORMAT)?;
-        let stored = Stored {
-            path,
-            bytes: &raw.bytes,
-            header: raw.header.get(),
-            prefix: "",
-        };
+        let stored = raw.single(path, FORMAT)?;
         return Ok(vec![summary_of(stored, FORMAT, &raw.crate_version, 1.0)?]);
     }
     let header = ensemble_file::read_header(path, &raw)?;

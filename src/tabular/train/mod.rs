@@ -441,17 +441,8 @@ impl Trainer {
     fn resume_from(path: &Path, table: &Table, prior: Option<&PriorFactory>) -> Result<Self> {
         let raw = crate::nn::checkpoint::read_raw(path)?;
         crate::tabular::ensemble_file::refuse_ensemble(path, &raw)?;
-        crate::nn::checkpoint::expect_format(path, &raw.format, crate::tabular::fitted::FORMAT)?;
-        Self::resume_stored(
-            crate::nn::checkpoint::Stored {
-                path,
-                bytes: &raw.bytes,
-                header: raw.header.get(),
-                prefix: "",
-            },
-            table,
-            prior,
-        )
+        let stored = raw.single(path, crate::tabular::fitted::FORMAT)?;
+        Self::resume_stored(stored, table, prior)
     }
 
     /// As [`Trainer::resume`] for one object of a file (see
