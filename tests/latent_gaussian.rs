@@ -357,6 +357,36 @@ fn an_ensemble_refuses_bad_members_and_weights() {
 }
 
 #[test]
+fn generating_in_memory_is_bounded_the_same_way_for_a_model_and_an_ensemble() {
+    // Common practice, no source: a row count that would not fit in memory is a typed
+    // error naming the count and the streaming alternative, not an allocation failure.
+    let (_, a, _) = iris_groups();
+    let model = untrained(&a);
+    let ensemble = Ensemble::new(vec![untrained(&a), untrained(&a)]).unwrap();
+    let too_many = TabularModel::KEPT_ROWS * 100 + 1;
+    for e in [
+        model.generate(too_many, 0).unwrap_err(),
+        ensemble.generate(too_many, 0).unwrap_err(),
+    ] {
+        assert!(
+            matches!(e, Error::InvalidConfig { field: "rows", .. }),
+            "{e}"
+        );
+        let msg = e.to_string();
+        assert!(msg.contains(&too_many.to_string()), "{msg}");
+        assert!(msg.contains("generate_csv"), "{msg}");
+    }
+    for e in [
+        model.generate(0, 0).unwrap_err(),
+        ensemble.generate(0, 0).unwrap_err(),
+    ] {
+        assert!(e.to_string().contains("at least 1 row"), "{e}");
+    }
+    // A count inside the bound generates.
+    assert_eq!(ensemble.generate(1, 0).unwrap().n_rows(), 1);
+}
+
+#[test]
 fn an_ensemble_file_reads_back_as_the_same_mixture() {
     // Round trip of the file format: the loaded ensemble has the same weights and gives the
     // same figures, row by row, as the one saved (whose figures the closed-form test above

@@ -221,14 +221,7 @@ impl Ensemble {
     /// [`Error::InvalidConfig`] for `rows == 0` or more than 100 ×
     /// [`TabularModel::KEPT_ROWS`]; as [`TabularModel::generate`].
     pub fn generate(&self, rows: usize, seed: u64) -> Result<Table> {
-        let limit = TabularModel::KEPT_ROWS * 100;
-        if rows > limit {
-            return Err(Error::config(
-                "rows",
-                rows,
-                format!("at most {limit} rows are generated in memory; stream more to a file with generate_csv"),
-            ));
-        }
+        crate::tabular::fitted::check_memory_rows(rows)?;
         let mut out = Vec::new();
         self.batches(rows, seed, |batch| {
             out.extend_from_slice(batch);

@@ -264,21 +264,10 @@ impl TabularModel {
     /// Generates `rows` new rows in the data's units (seeded, in batches, no autodiff graph).
     ///
     /// # Errors
-    /// [`Error::InvalidConfig`] for `rows == 0`.
+    /// [`Error::InvalidConfig`] for `rows == 0` or more than 100 × [`Self::KEPT_ROWS`]
+    /// (use [`TabularModel::generate_csv`] for more).
     pub fn generate(&self, rows: usize, seed: u64) -> Result<Table> {
-        if rows == 0 {
-            return Err(Error::config("rows", 0, "generate at least 1 row"));
-        }
-        if rows > Self::KEPT_ROWS * 100 {
-            return Err(Error::config(
-                "rows",
-                rows,
-                format!(
-                    "at most {} rows are generated in memory; stream more to a file with generate_csv",
-                    Self::KEPT_ROWS * 100
-                ),
-            ));
-        }
+        check_memory_rows(rows)?;
         let mut out = Vec::with_capacity(rows * self.columns.len());
         for y in self.generated_batches(rows, seed) {
             out.extend(y?);
@@ -547,6 +536,24 @@ impl ModelHeader {
         }
         Ok(())
     }
+}
+
+/// Rows generated in memory at most by one call (more are streamed to a file).
+const MEMORY_ROWS: usize = TabularModel::KEPT_ROWS * 100;
+
+/// Checks a number of rows to generate in memory: at least 1, at most [`MEMORY_ROWS`].
+pub(crate) fn check_memory_rows(rows: usize) -> Result<()> {
+    if rows == 0 {
+        return Err(Error::config("rows", 0, "generate at least 1 row"));
+    }
+    if rows > MEMORY_ROWS {
+        return Err(Error::config(
+            "rows",
+            rows,
+            format!("at most {MEMORY_ROWS} rows are generated in memory; stream more to a file with generate_csv"),
+        ));
+    }
+    Ok(())
 }
 
 /// Checks a number of rows to generate into a file: at least 1, at most
