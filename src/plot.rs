@@ -40,8 +40,8 @@ pub fn elbo_curve_svg(history: &History, dims: usize, path: impl AsRef<Path>) ->
     elbo_curves_svg(&[history], dims, path)
 }
 
-/// As [`elbo_curve_svg`] for the members of an ensemble: each member's two curves, labelled
-/// with its number (from 1) when there are several.
+/// As [`elbo_curve_svg`] for the models of an ensemble: each model's two curves, labelled
+/// with its number in the file (from 1) when there are several.
 ///
 /// # Errors
 /// [`Error::Io`] if the file cannot be written.
@@ -63,7 +63,7 @@ pub fn elbo_curves_svg(histories: &[&History], dims: usize, path: impl AsRef<Pat
             if histories.len() == 1 {
                 what.to_string()
             } else {
-                format!("member {} {what}", m + 1)
+                format!("model {} {what}", m + 1)
             }
         };
         series.push((label("training"), train));
@@ -102,7 +102,17 @@ pub fn curves_svg(
             .iter()
             .flat_map(|(_, s)| s.iter().skip(s.len() / 10).map(|p| p.1)),
     );
-    let colours = [BLUE, RED, GREEN, MAGENTA, CYAN];
+    // Eight distinct colours: the four models of a default fit, two curves each.
+    let colours = [
+        BLUE,
+        RED,
+        GREEN,
+        MAGENTA,
+        CYAN,
+        RGBColor(230, 140, 0),
+        RGBColor(120, 70, 20),
+        RGBColor(110, 110, 110),
+    ];
     let mut svg = String::new();
     {
         let root = SVGBackend::with_string(&mut svg, (720, 440)).into_drawing_area();

@@ -106,9 +106,9 @@ impl History {
         crate::util::fs::write_atomic(path.as_ref(), self.to_csv().as_bytes())
     }
 
-    /// The histories of an ensemble's members as one CSV table: [`History::to_csv`]'s
-    /// columns after a first column `member` (numbered from 1); with one member, that
-    /// member's own table.
+    /// The histories of an ensemble's models as one CSV table: [`History::to_csv`]'s
+    /// columns after a first column `model` (its number in the file, from 1); with one
+    /// model, that model's own table.
     pub fn members_csv(histories: &[&History]) -> String {
         if let [one] = histories {
             return one.to_csv();
@@ -117,7 +117,7 @@ impl History {
         for (m, h) in histories.iter().enumerate() {
             for (i, line) in h.to_csv().lines().enumerate() {
                 match (i, m) {
-                    (0, 0) => out.push_str(&format!("member,{line}\n")),
+                    (0, 0) => out.push_str(&format!("model,{line}\n")),
                     (0, _) => {}
                     _ => out.push_str(&format!("{},{line}\n", m + 1)),
                 }
