@@ -122,7 +122,7 @@ pub use tabular::compare::{compare_samples, ColumnComparison, CompareOptions, Sa
 pub use tabular::csv_io::HeaderLine;
 pub use tabular::demo::{builtin_demo, demo_table, DEMO_COLUMNS, DEMO_ROWS, DEMO_SEED};
 pub use tabular::ensemble::Ensemble;
-pub use tabular::ensemble_file::MAX_MEMBERS;
+pub use tabular::ensemble_file::{MAX_MEMBERS, MAX_MODELS};
 pub use tabular::ensemble_trainer::{EnsembleTrainer, StartComparison};
 pub use tabular::evaluation::{EvalOptions, Evaluation};
 pub use tabular::fitted::TabularModel;
@@ -134,6 +134,7 @@ pub use tabular::model::{
 };
 pub use tabular::scaler::Standardizer;
 pub use tabular::schema::{ColumnKind, ColumnRules, Schema};
+pub use tabular::stacking::stacking_weight;
 pub use tabular::summary::{inspect_checkpoint, inspect_members, CheckpointSummary};
 pub use tabular::table::{write_draws_csv, Table};
 pub use tabular::train::{

@@ -31,6 +31,11 @@ fn fit_evaluate_sample_inspect_on_the_demo() {
         out.contains("best validation ELBO per dimension") && out.contains("model written to"),
         "{out}"
     );
+    // Two members; each also keeps its fit from one Gaussian when the stacking weight gives
+    // it a share (the line that says so names its place in the file).
+    let beside = out.matches("kept both").count();
+    assert!(beside <= 2, "{out}");
+    assert_eq!(out.matches("of the file)").count(), beside, "{out}");
     assert_eq!(files(&d), vec!["curve.svg", "demo.safetensors", "h.csv"]);
     assert!(std::fs::read_to_string(d.join("curve.svg"))
         .unwrap()
@@ -117,11 +122,12 @@ fn fit_evaluate_sample_inspect_on_the_demo() {
         serde_json::from_str(String::from_utf8_lossy(&o.stdout).trim()).unwrap()
     };
     let ll = |v: &serde_json::Value| v["loglik_per_row"].as_f64().unwrap();
-    // The default fit is an ensemble of two models (one file).
+    // The default fit is an ensemble of two members (one file), with the fits it reported
+    // kept beside them.
     let alone = evaluate(&model, &[]);
-    assert_eq!(alone["models"], 2);
+    assert_eq!(alone["models"], 2 + beside);
     let twice = evaluate(&model, &[&model]);
-    assert_eq!(twice["models"], 4);
+    assert_eq!(twice["models"], 2 * (2 + beside));
     assert!((ll(&twice) - ll(&alone)).abs() < 1e-9, "{twice} vs {alone}");
     // With the resumed fit: each row's log(½a + ½b) is at least the mean of the two logs
     // (Jensen's inequality) and at least the larger one minus log 2, so the means obey

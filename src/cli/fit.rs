@@ -42,8 +42,9 @@ pub struct FitArgs {
     /// one Gaussian). The fit starts from the mixture EM finds [default: chosen by BIC on the
     /// training rows, from 1 to 10, for tables of up to 64 continuous columns with no
     /// categorical column and no missing cell, otherwise 1; when BIC chooses a mixture, the fit
-    /// from one Gaussian is also trained and the model with the higher validation
-    /// log-likelihood is kept].
+    /// from one Gaussian is also trained and the member's weight is split between the two
+    /// fits by the weight that maximises their mixture's validation log-likelihood (a fit
+    /// whose weight is 0 is dropped)].
     #[arg(long, value_parser = positive_usize)]
     noise_components: Option<usize>,
     /// Hidden units per layer of the drift and control networks.
@@ -358,7 +359,7 @@ fn finish(
     let several = reports.len() > 1;
     if several {
         println!(
-            "fitted {dims} columns of {rows} rows in {seconds:.1} s: an ensemble of {} models (seeds {} to {})",
+            "fitted {dims} columns of {rows} rows in {seconds:.1} s: an ensemble of {} members (seeds {} to {})",
             reports.len(),
             trainer.members()[0].config().seed,
             trainer.members()[reports.len() - 1].config().seed
@@ -432,9 +433,10 @@ fn fit_with_progress(
 
 /// Beside each member whose fit started from the Gaussian mixture BIC chose, trains the fit
 /// from one Gaussian (all of them together, within what is left of the time budget) and
-/// keeps the model with the higher validation log-likelihood (see
-/// `EnsembleTrainer::compare_starts`); a member's report becomes the kept fit's, with the
-/// seconds of both. Returns, per member, the line that reports the choice.
+/// weighs the two fits by their validation likelihood, keeping both or one (see
+/// `EnsembleTrainer::compare_starts`); a member's report becomes the fit from one Gaussian's
+/// when that alone was kept, with the seconds of both. Returns, per member, the line that
+/// reports the outcome.
 fn compare_starts(
     a: &FitArgs,
     group: &Group,
@@ -495,7 +497,7 @@ fn compare_starts(
         // Both fits of a member share its split and so its scaler.
         let jac = member.model().scaler().log_jacobian();
         let per_dim = |ll: f64| (ll + jac) / dims as f64;
-        if c.gaussian_kept {
+        if c.mixture_weight <= 0.0 {
             let r = &mut reports[i];
             r.epochs = member.state().epoch;
             r.best_epoch = member.state().best_epoch;
@@ -504,10 +506,15 @@ fn compare_starts(
         }
         reports[i].seconds += c.seconds;
         let components = components[i];
-        let kept = if c.gaussian_kept {
-            "one Gaussian"
-        } else {
-            "the mixture"
+        let kept = match c.gaussian_at {
+            Some(at) => format!(
+                "kept both, weighted {:.3} and {:.3} by their validation likelihood (the fit from one Gaussian is model {} of the file)",
+                c.mixture_weight,
+                1.0 - c.mixture_weight,
+                at + 1
+            ),
+            None if c.mixture_weight > 0.0 => "kept the fit from the mixture".to_string(),
+            None => "kept the fit from one Gaussian".to_string(),
         };
         let whose = if reports.len() > 1 {
             format!("member {}: ", i + 1)
@@ -515,7 +522,7 @@ fn compare_starts(
             String::new()
         };
         notes[i] = Some(format!(
-            "{whose}started from a Gaussian mixture of {components} components (chosen by BIC) and from one Gaussian: validation log-likelihood per dimension {:.4} against {:.4} nats (importance-weighted, {} paths per row); kept the fit from {kept}",
+            "{whose}started from a Gaussian mixture of {components} components (chosen by BIC) and from one Gaussian: validation log-likelihood per dimension {:.4} against {:.4} nats (importance-weighted, {} paths per row); {kept}",
             per_dim(c.mixture),
             per_dim(c.gaussian),
             neural_sde::VALIDATION_LOGLIK_PATHS
@@ -563,8 +570,12 @@ fn refit(
         }
         return Ok(());
     }
+    // The refits keep the weights validation gave the fits they repeat.
     let mut r = EnsembleTrainer::from_trainers(refits)
-        .and_then(|r| r.in_group(|| group.handle()))
+        .and_then(|mut r| {
+            r.set_weights(trainer.weights())?;
+            r.in_group(|| group.handle())
+        })
         .map_err(|e| group.settle(e))?;
     // Started only when its estimate fits in what is left; its own cap is the whole budget,
     // which the checkpoint records (the seconds left differ from run to run).

@@ -16,8 +16,12 @@ use crate::nn::checkpoint::{RawFile, Stored};
 /// The `format` of an ensemble's file.
 pub(crate) const ENSEMBLE_FORMAT: &str = "neural-sde-ensemble";
 
-/// Most members a file may hold (each member's model is built when the file is read).
+/// Most members an ensemble is trained with (`EnsembleTrainer::new`, `fit --members`).
 pub const MAX_MEMBERS: usize = 16;
+
+/// Most models a file may hold (each model is built when the file is read): each member may
+/// keep two fits (`EnsembleTrainer::compare_starts`).
+pub const MAX_MODELS: usize = 2 * MAX_MEMBERS;
 
 /// The header of an ensemble's file.
 #[derive(Serialize, Deserialize)]
@@ -54,7 +58,7 @@ pub(crate) fn refuse_ensemble(path: &Path, raw: &RawFile) -> Result<()> {
     Ok(())
 }
 
-/// Parses and checks an ensemble's header: 1 to [`MAX_MEMBERS`] members, one finite positive
+/// Parses and checks an ensemble's header: 1 to [`MAX_MODELS`] members, one finite positive
 /// weight each, and no tensor outside the members' prefixes.
 ///
 /// # Errors
@@ -62,10 +66,10 @@ pub(crate) fn refuse_ensemble(path: &Path, raw: &RawFile) -> Result<()> {
 pub(crate) fn read_header(path: &Path, raw: &RawFile) -> Result<EnsembleHeader> {
     let header: EnsembleHeader = crate::nn::checkpoint::parse_header(path, raw.header.get())?;
     let n = header.members.len();
-    if n == 0 || n > MAX_MEMBERS {
+    if n == 0 || n > MAX_MODELS {
         return Err(bad(
             path,
-            format!("the ensemble has {n} members; a file holds 1 to {MAX_MEMBERS}"),
+            format!("the ensemble has {n} members; a file holds 1 to {MAX_MODELS}"),
         ));
     }
     if header.weights.len() != n {
@@ -144,13 +148,15 @@ pub(crate) struct MemberParts {
 /// checking that each member's header parses back with `member_parses`.
 ///
 /// # Errors
-/// As [`crate::nn::checkpoint::write`].
+/// [`Error::InvalidConfig`] for more than [`MAX_MODELS`] members (a file that could not be
+/// read back); as [`crate::nn::checkpoint::write`].
 pub(crate) fn write(
     path: &Path,
     members: Vec<MemberParts>,
     weights: &[f64],
     member_parses: impl Fn(&str) -> serde_json::Result<()>,
 ) -> Result<()> {
+    crate::util::limits::at_most("members", members.len(), MAX_MODELS, "models in one file")?;
     let mut tensors = Vec::new();
     let mut headers = Vec::with_capacity(members.len());
     for (i, m) in members.into_iter().enumerate() {

@@ -20,6 +20,7 @@ pub(crate) mod model;
 pub(crate) mod scaler;
 pub(crate) mod schema;
 pub(crate) mod split;
+pub(crate) mod stacking;
 pub(crate) mod summary;
 #[cfg(feature = "csv")]
 pub(crate) mod survey;

@@ -368,6 +368,7 @@ impl Trainer {
             seconds: 0.0,
             planned_steps: None,
             mixture_by_bic,
+            starts_weighed: false,
         };
         let mut trainer = Self {
             model: TabularModel {
@@ -653,6 +654,7 @@ impl Trainer {
         let model_cfg = self.model.model.config().clone();
         let mut t = Self::create(table, model_cfg, all, self.prior.as_ref())?;
         t.warnings.clear();
+        t.state.starts_weighed = self.state.starts_weighed;
         Ok(Some(t))
     }
 
@@ -687,7 +689,11 @@ impl Trainer {
     /// # Errors
     /// As [`Trainer::new`].
     pub fn gaussian_start(&self, table: &Table) -> Result<Option<Trainer>> {
-        if !self.state.mixture_by_bic || self.val_rows.is_empty() || !self.ended_well() {
+        if !self.state.mixture_by_bic
+            || self.state.starts_weighed
+            || self.val_rows.is_empty()
+            || !self.ended_well()
+        {
             return Ok(None);
         }
         let model_cfg = LatentConfig {
@@ -724,7 +730,14 @@ impl Trainer {
         if theirs > mine {
             *self = other;
         }
+        self.state.starts_weighed = true;
         Ok((mine, theirs))
+    }
+
+    /// Records that this fit's starts were weighed ([`crate::EnsembleTrainer::compare_starts`]):
+    /// [`Trainer::gaussian_start`] offers no other start after it, here or once resumed.
+    pub(crate) fn mark_starts_weighed(&mut self) {
+        self.state.starts_weighed = true;
     }
 
     /// The importance-weighted log-likelihood per row of the validation rows (standardised
@@ -735,20 +748,52 @@ impl Trainer {
     /// # Errors
     /// [`Error::Candle`] on tensor errors; [`Error::Collective`] when the group fails.
     pub fn validation_loglik(&self) -> Result<Option<f64>> {
-        if self.val_rows.is_empty() {
+        let rows = self.validation_logliks()?;
+        if rows.is_empty() {
             return Ok(None);
         }
+        Ok(Some(rows.iter().sum::<f64>() / rows.len() as f64))
+    }
+
+    /// Each validation row's importance-weighted log-likelihood, in the order the trainer
+    /// holds them (as [`Trainer::validation_loglik`], which is their mean; empty without
+    /// validation rows). Two trainers on the same table, seed and split hold the same rows in
+    /// the same order. The rows are shared out over the group, and every process gets every
+    /// value.
+    ///
+    /// # Errors
+    /// As [`Trainer::validation_loglik`].
+    pub fn validation_logliks(&self) -> Result<Vec<f64>> {
         let k = VALIDATION_LOGLIK_PATHS;
-        let mean = self.row_sums(&self.val_rows, &[], k, 1, |t, rows| {
-            (0..rows)
-                .map(|at| {
-                    let lw = &t.log_weight[at * k..(at + 1) * k];
-                    let max = lw.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-                    max + (lw.iter().map(|l| (l - max).exp()).sum::<f64>() / k as f64).ln()
-                })
-                .sum()
-        })?;
-        Ok(Some(mean))
+        let n = self.val_rows.len();
+        // Each process fills its share and the others' stay 0, so the group's sum is exact.
+        let mut out = vec![0.0; n];
+        let mine = share(n, self.group.rank(), self.group.size());
+        let chunk_rows = self
+            .model
+            .model
+            .config()
+            .chunk_rows(self.model.coder.layout(), k, (4096 / k).max(1))
+            .max(1);
+        let mut at = mine.start;
+        while at < mine.end {
+            let end = (at + chunk_rows).min(mine.end);
+            let (values, keys) = self.val_rows.slice_f64(at..end);
+            let t =
+                self.model
+                    .model
+                    .posterior_terms_keyed(&values, k, self.train_cfg.seed, keys)?;
+            for (r, lw) in t.log_weight.chunks_exact(k).take(end - at).enumerate() {
+                let max = lw.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+                out[at + r] =
+                    max + (lw.iter().map(|l| (l - max).exp()).sum::<f64>() / k as f64).ln();
+            }
+            at = end;
+        }
+        if self.group.size() > 1 {
+            self.group.sum_f64(&mut out)?;
+        }
+        Ok(out)
     }
 
     /// Trains data-parallel in `group` (for instance every process of an MPI job): each

@@ -46,6 +46,11 @@ pub struct TrainState {
     /// offers the fit from one Gaussian to compare with.
     #[serde(default)]
     pub mixture_by_bic: bool,
+    /// Set on a member's fits once [`crate::EnsembleTrainer::compare_starts`] has weighed
+    /// them against each other (or [`crate::Trainer::keep_better`] kept one), so that a
+    /// resumed fit does not train another start.
+    #[serde(default)]
+    pub starts_weighed: bool,
 }
 
 /// Summary returned by [`crate::Trainer::fit`].
