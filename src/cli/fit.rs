@@ -508,9 +508,8 @@ fn compare_starts(
         let components = components[i];
         let kept = match c.gaussian_at {
             Some(at) => format!(
-                "kept both, weighted {:.3} and {:.3} by their validation likelihood (the fit from one Gaussian is model {} of the file)",
-                c.mixture_weight,
-                1.0 - c.mixture_weight,
+                "kept both, weighted {} by their validation likelihood (the fit from one Gaussian is model {} of the file)",
+                pair_of_weights(c.mixture_weight),
                 at + 1
             ),
             None if c.mixture_weight > 0.0 => "kept the fit from the mixture".to_string(),
@@ -529,6 +528,16 @@ fn compare_starts(
         ));
     }
     Ok(notes)
+}
+
+/// "w and 1 − w", with three decimals, or in scientific notation when one of them would
+/// print as 0.
+fn pair_of_weights(w: f64) -> String {
+    if w.min(1.0 - w) < 5e-4 {
+        format!("{w:.3e} and {:.3e}", 1.0 - w)
+    } else {
+        format!("{w:.3} and {:.3}", 1.0 - w)
+    }
 }
 
 /// Trains the final models on every row for the epochs validation chose (each member its

@@ -52,14 +52,14 @@ pub fn run(a: InspectArgs) -> Result<(), Failure> {
     if all.len() > 1 {
         let weights: Vec<String> = all.iter().map(|m| format!("{:.4}", m.weight)).collect();
         println!(
-            "members        {} (an ensemble: the mixture of their densities, weights {})",
+            "models         {} (an ensemble: the mixture of their densities, weights {})",
             all.len(),
             weights.join(", ")
         );
     }
     for (i, member) in all.iter().enumerate() {
         if all.len() > 1 {
-            println!("member {}", i + 1);
+            println!("model {}", i + 1);
         }
         member_lines(member);
     }
