@@ -82,7 +82,7 @@ impl EnsembleTrainer {
         train_cfg: TrainConfig,
         members: usize,
     ) -> Result<Self> {
-        check_count(members)?;
+        check_count(members, MAX_MEMBERS, "members of an ensemble")?;
         let trainers = (0..members)
             .map(|i| {
                 if members == 1 {
@@ -414,23 +414,17 @@ impl EnsembleTrainer {
 
 /// At most [`MAX_MODELS`] trainers (a file's limit).
 fn check_models(models: usize) -> Result<()> {
-    if models == 0 {
-        return Err(Error::config(
-            "members",
-            0,
-            "an ensemble needs at least one member",
-        ));
-    }
-    crate::util::limits::at_most("members", models, MAX_MODELS, "models of an ensemble")
+    check_count(models, MAX_MODELS, "models of an ensemble")
 }
 
-fn check_count(members: usize) -> Result<()> {
-    if members == 0 {
+/// 1 to `max` of `what`.
+fn check_count(n: usize, max: usize, what: &str) -> Result<()> {
+    if n == 0 {
         return Err(Error::config(
             "members",
             0,
             "an ensemble needs at least one member",
         ));
     }
-    crate::util::limits::at_most("members", members, MAX_MEMBERS, "members of an ensemble")
+    crate::util::limits::at_most("members", n, max, what)
 }

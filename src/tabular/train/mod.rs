@@ -769,12 +769,7 @@ impl Trainer {
         // Each process fills its share and the others' stay 0, so the group's sum is exact.
         let mut out = vec![0.0; n];
         let mine = share(n, self.group.rank(), self.group.size());
-        let chunk_rows = self
-            .model
-            .model
-            .config()
-            .chunk_rows(self.model.coder.layout(), k, (4096 / k).max(1))
-            .max(1);
+        let chunk_rows = self.chunk_rows(k);
         let mut at = mine.start;
         while at < mine.end {
             let end = (at + chunk_rows).min(mine.end);
@@ -939,6 +934,16 @@ impl Trainer {
         self.row_sums(rows, positions, k, k, |t, _| t.elbo.iter().sum())
     }
 
+    /// Rows per chunk when scoring rows with `paths` posterior paths each (about 4,096 paths
+    /// per chunk, within the model's memory bound).
+    fn chunk_rows(&self, paths: usize) -> usize {
+        self.model
+            .model
+            .config()
+            .chunk_rows(self.model.coder.layout(), paths, (4096 / paths).max(1))
+            .max(1)
+    }
+
     /// Over the stored rows at `positions` (all of them when empty), with `paths` posterior
     /// paths per row (noise keyed by each row): the sum of `per_chunk` (which reads the terms
     /// of a chunk of rows and their count) divided by `per_row` times the rows. The rows are
@@ -959,12 +964,7 @@ impl Trainer {
             positions.len()
         };
         let mine = share(n, self.group.rank(), self.group.size());
-        let chunk_rows = self
-            .model
-            .model
-            .config()
-            .chunk_rows(self.model.coder.layout(), k, (4096 / k).max(1))
-            .max(1);
+        let chunk_rows = self.chunk_rows(k);
         let mut sums = [0.0, 0.0];
         let mut at = mine.start;
         while at < mine.end {
