@@ -15,7 +15,9 @@ const STEPS: usize = 60;
 /// The objective is concave in `w`, so its maximiser is the root of its derivative
 /// `Σ_r (p − q) / (w p + (1 − w) q)`, which decreases in `w`; it is found by bisection
 /// (an endpoint when the derivative keeps one sign), with each term scaled by the larger
-/// density so that no exponential overflows. Rows with a non-finite value are skipped.
+/// density so that no exponential overflows. A row that one density gives no mass
+/// (`log = −∞`) counts fully against it; a row without a difference (both `−∞`, or a NaN)
+/// is skipped.
 ///
 /// ```
 /// use neural_sde::stacking_weight;
@@ -33,7 +35,7 @@ pub fn stacking_weight(first: &[f64], second: &[f64]) -> f64 {
         .iter()
         .zip(second)
         .map(|(p, q)| p - q)
-        .filter(|d| d.is_finite())
+        .filter(|d| !d.is_nan())
         .collect();
     let slope = |w: f64| -> f64 {
         diffs
@@ -112,5 +114,20 @@ mod tests {
         assert_eq!(stacking_weight(&[-1e4, 0.0], &[0.0, 1e-9]), 0.0);
         assert_eq!(stacking_weight(&[], &[]), 1.0);
         assert_eq!(stacking_weight(&[f64::NAN], &[0.0]), 1.0);
+        assert_eq!(
+            stacking_weight(&[f64::NEG_INFINITY], &[f64::NEG_INFINITY]),
+            1.0
+        );
+    }
+
+    /// A row one density gives no mass is a row of the other's support: with one such row
+    /// each way, the share of rows (Bishop 2006, eq. 9.22) is ½.
+    #[test]
+    fn rows_without_mass_count_against_their_density() {
+        let ninf = f64::NEG_INFINITY;
+        let w = stacking_weight(&[ninf, 0.0], &[0.0, ninf]);
+        assert!((w - 0.5).abs() < 1e-12, "{w}");
+        assert_eq!(stacking_weight(&[ninf, 0.0], &[0.0, 0.0]), 0.0);
+        assert_eq!(stacking_weight(&[0.0, 0.0], &[0.0, ninf]), 1.0);
     }
 }
