@@ -10,7 +10,9 @@ use crate::tabular::model::LatentConfig;
 use crate::tabular::stacking::stacking_weight;
 use crate::tabular::table::Table;
 
-use crate::tabular::train::{checkpoint_parses_back, periodic, TrainConfig, TrainReport, Trainer};
+use crate::tabular::train::{
+    checkpoint_parses_back, periodic, row_mean, TrainConfig, TrainReport, Trainer,
+};
 
 /// Trains the members of an [`Ensemble`]: one [`Trainer`] per member, on the same table and
 /// settings, member `i` with seed `seed + i` (its own minibatches, start and noise) and
@@ -335,7 +337,6 @@ impl EnsembleTrainer {
             let mine = self.members[i].validation_logliks()?;
             let theirs = other.validation_logliks()?;
             let w = stacking_weight(&mine, &theirs);
-            let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len().max(1) as f64;
             self.members[i].mark_starts_weighed();
             other.mark_starts_weighed();
             // The fit from one Gaussian ran within what was left of the budget, which differs
@@ -351,8 +352,9 @@ impl EnsembleTrainer {
                 self.weights[i] *= w;
             }
             out[i] = Some(StartComparison {
-                mixture: mean(&mine),
-                gaussian: mean(&theirs),
+                // Both hold validation rows (`gaussian_start` offers a start only then).
+                mixture: row_mean(&mine).unwrap_or(f64::NAN),
+                gaussian: row_mean(&theirs).unwrap_or(f64::NAN),
                 mixture_weight: w,
                 gaussian_at,
                 seconds: report.seconds,

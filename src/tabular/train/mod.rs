@@ -748,11 +748,7 @@ impl Trainer {
     /// # Errors
     /// [`Error::Candle`] on tensor errors; [`Error::Collective`] when the group fails.
     pub fn validation_loglik(&self) -> Result<Option<f64>> {
-        let rows = self.validation_logliks()?;
-        if rows.is_empty() {
-            return Ok(None);
-        }
-        Ok(Some(rows.iter().sum::<f64>() / rows.len() as f64))
+        Ok(row_mean(&self.validation_logliks()?))
     }
 
     /// Each validation row's importance-weighted log-likelihood, in the order the trainer
@@ -1354,4 +1350,10 @@ pub(crate) struct CheckpointHeader {
     model: crate::tabular::fitted::ModelHeader,
     #[serde(flatten)]
     training: TrainingHeader,
+}
+
+/// The mean of per-row values (as [`Trainer::validation_logliks`] gives them); `None` for no
+/// rows.
+pub(crate) fn row_mean(rows: &[f64]) -> Option<f64> {
+    (!rows.is_empty()).then(|| rows.iter().sum::<f64>() / rows.len() as f64)
 }
