@@ -40,14 +40,16 @@ pub fn elbo_curve_svg(history: &History, dims: usize, path: impl AsRef<Path>) ->
     elbo_curves_svg(&[history], dims, path)
 }
 
-/// As [`elbo_curve_svg`] for the models of an ensemble: each model's two curves, labelled
-/// with its number in the file (from 1) when there are several.
+/// As [`elbo_curve_svg`] for the models of an ensemble. With several models each has its
+/// own colour, labelled with its number in the file (from 1): its validation curve thick,
+/// its training curve thin and pale.
 ///
 /// # Errors
 /// [`Error::Io`] if the file cannot be written.
 pub fn elbo_curves_svg(histories: &[&History], dims: usize, path: impl AsRef<Path>) -> Result<()> {
     let d = dims.max(1) as f64;
-    let mut series = Vec::new();
+    let several = histories.len() > 1;
+    let mut curves = Vec::new();
     for (m, history) in histories.iter().enumerate() {
         let train: Vec<(f64, f64)> = history
             .epochs
@@ -59,28 +61,41 @@ pub fn elbo_curves_svg(histories: &[&History], dims: usize, path: impl AsRef<Pat
             .iter()
             .filter_map(|r| r.val_elbo.map(|v| (r.epoch as f64, v / d)))
             .collect();
-        let label = |what: &str| {
-            if histories.len() == 1 {
-                what.to_string()
-            } else {
-                format!("model {} {what}", m + 1)
+        if several {
+            // The model's label goes with its thick curve, or with its only one.
+            let labelled = val.is_empty();
+            curves.push(Curve {
+                label: labelled.then(|| format!("model {}", m + 1)),
+                points: train,
+                colour: m,
+                thin: !labelled,
+            });
+            if !val.is_empty() {
+                curves.push(Curve {
+                    label: Some(format!("model {}", m + 1)),
+                    points: val,
+                    colour: m,
+                    thin: false,
+                });
             }
-        };
-        series.push((label("training"), train));
-        if !val.is_empty() {
-            series.push((label("validation"), val));
+        } else {
+            curves.push(Curve::plain("training", train, 0));
+            if !val.is_empty() {
+                curves.push(Curve::plain("validation", val, 1));
+            }
         }
     }
-    let series: Vec<(&str, Vec<(f64, f64)>)> = series
-        .iter()
-        .map(|(l, v)| (l.as_str(), v.clone()))
-        .collect();
-    curves_svg(
-        "ELBO per dimension by epoch (standardised units)",
+    let title = if several {
+        "ELBO per dimension by epoch (standardised units; thick: validation, thin: training)"
+    } else {
+        "ELBO per dimension by epoch (standardised units)"
+    };
+    draw_curves(
+        title,
         "epoch",
         "ELBO / dimension (nats)",
-        &series,
-        path,
+        &curves,
+        path.as_ref(),
     )
 }
 
@@ -96,13 +111,51 @@ pub fn curves_svg(
     series: &[(&str, Vec<(f64, f64)>)],
     path: impl AsRef<Path>,
 ) -> Result<()> {
-    let (x0, x1) = range(series.iter().flat_map(|(_, s)| s.iter().map(|p| p.0)));
+    let curves: Vec<Curve> = series
+        .iter()
+        .enumerate()
+        .map(|(i, (label, points))| Curve::plain(label, points.clone(), i))
+        .collect();
+    draw_curves(title, x_label, y_label, &curves, path.as_ref())
+}
+
+/// One line of [`draw_curves`].
+struct Curve {
+    /// Its legend entry, if any.
+    label: Option<String>,
+    points: Vec<(f64, f64)>,
+    /// Index into the palette (cycled).
+    colour: usize,
+    /// Drawn thin and pale, beside the thick ones.
+    thin: bool,
+}
+
+impl Curve {
+    fn plain(label: &str, points: Vec<(f64, f64)>, colour: usize) -> Self {
+        Self {
+            label: Some(label.to_string()),
+            points,
+            colour,
+            thin: false,
+        }
+    }
+}
+
+fn draw_curves(
+    title: &str,
+    x_label: &str,
+    y_label: &str,
+    curves: &[Curve],
+    path: &Path,
+) -> Result<()> {
+    let (x0, x1) = range(curves.iter().flat_map(|c| c.points.iter().map(|p| p.0)));
     let (y0, y1) = range(
-        series
+        curves
             .iter()
-            .flat_map(|(_, s)| s.iter().skip(s.len() / 10).map(|p| p.1)),
+            .flat_map(|c| c.points.iter().skip(c.points.len() / 10).map(|p| p.1)),
     );
-    // Eight distinct colours: the four models of a default fit, two curves each.
+    // Eight distinct colours: the models of a default fit (up to four members, each with
+    // up to two fits).
     let colours = [
         BLUE,
         RED,
@@ -118,7 +171,7 @@ pub fn curves_svg(
         let root = SVGBackend::with_string(&mut svg, (720, 440)).into_drawing_area();
         root.fill(&WHITE).map_err(plot_err)?;
         let mut chart = ChartBuilder::on(&root)
-            .caption(title, ("sans-serif", 18))
+            .caption(title, ("sans-serif", 16))
             .margin(12)
             .x_label_area_size(36)
             .y_label_area_size(56)
@@ -130,13 +183,26 @@ pub fn curves_svg(
             .y_desc(y_label)
             .draw()
             .map_err(plot_err)?;
-        for (i, (name, pts)) in series.iter().enumerate() {
-            let c = colours[i % colours.len()];
-            chart
-                .draw_series(LineSeries::new(pts.iter().copied(), c.stroke_width(2)))
-                .map_err(plot_err)?
-                .label(*name)
-                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], c));
+        // Thin curves first, so that the thick ones stay on top.
+        let order = curves
+            .iter()
+            .filter(|c| c.thin)
+            .chain(curves.iter().filter(|c| !c.thin));
+        for curve in order {
+            let c = colours[curve.colour % colours.len()];
+            let style = if curve.thin {
+                c.mix(0.35).stroke_width(1)
+            } else {
+                c.stroke_width(2)
+            };
+            let drawn = chart
+                .draw_series(LineSeries::new(curve.points.iter().copied(), style))
+                .map_err(plot_err)?;
+            if let Some(label) = &curve.label {
+                drawn
+                    .label(label.as_str())
+                    .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], c));
+            }
         }
         chart
             .configure_series_labels()
@@ -147,7 +213,7 @@ pub fn curves_svg(
             .map_err(plot_err)?;
         root.present().map_err(plot_err)?;
     }
-    finish(svg, path.as_ref())
+    finish(svg, path)
 }
 
 fn histogram(values: &[f64], lo: f64, hi: f64, bins: usize) -> Vec<f64> {
@@ -448,4 +514,60 @@ pub fn density_samples_svg(
         root.present().map_err(plot_err)?;
     }
     finish(svg, path.as_ref())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::tabular::train::EpochRecord;
+
+    fn history(validation: bool) -> History {
+        let epochs = (1..=5)
+            .map(|e| EpochRecord {
+                epoch: e,
+                step: e as u64,
+                train_elbo: -1.0 / e as f64,
+                val_elbo: validation.then(|| -1.5 / e as f64),
+                control_cost: 0.0,
+                reconstruction: 0.0,
+                learning_rate: 1e-3,
+                grad_norm: 1.0,
+                seconds: 0.1,
+            })
+            .collect();
+        History { epochs }
+    }
+
+    fn drawn(histories: &[&History]) -> String {
+        let path = std::env::temp_dir().join(format!(
+            "nsde-plot-{}-{}.svg",
+            std::process::id(),
+            histories.len()
+        ));
+        elbo_curves_svg(histories, 2, &path).unwrap();
+        let svg = std::fs::read_to_string(&path).unwrap();
+        std::fs::remove_file(&path).unwrap();
+        svg
+    }
+
+    /// The lines of `svg` that are exactly `text` (plotters writes each label on its own line).
+    fn labels(svg: &str, text: &str) -> usize {
+        svg.lines().filter(|l| l.trim() == text).count()
+    }
+
+    // Common practice, no source: one legend entry per model, the line weight telling the
+    // two curves apart.
+    #[test]
+    fn several_models_get_one_legend_entry_each() {
+        let (a, b) = (history(true), history(false));
+        let svg = drawn(&[&a, &b]);
+        assert!(svg.contains("thick: validation"), "{svg}");
+        assert_eq!(labels(&svg, "model 1"), 1, "{svg}");
+        assert_eq!(labels(&svg, "model 2"), 1, "{svg}");
+        assert_eq!(labels(&svg, "training"), 0, "{svg}");
+        let one = drawn(&[&a]);
+        assert_eq!(labels(&one, "training"), 1, "{one}");
+        assert_eq!(labels(&one, "validation"), 1, "{one}");
+        assert!(!one.contains("model 1"), "{one}");
+    }
 }
