@@ -19,7 +19,8 @@ pub(crate) type Snapshot = Vec<(String, Tensor)>;
 pub(crate) fn snapshot(varmap: &VarMap) -> Result<Snapshot> {
     sorted_vars(varmap)?
         .into_iter()
-        .map(|(n, v)| Ok((n, v.as_tensor().copy()?)))
+        // Detached, so that the copy holds no link to the live variable.
+        .map(|(n, v)| Ok((n, v.as_tensor().copy()?.detach())))
         .collect()
 }
 
