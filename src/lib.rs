@@ -62,7 +62,8 @@
 //! generated rows against data. [`Ensemble`] combines several fitted models of one table
 //! (fits of different seeds, say) as the mixture of their densities, and evaluates,
 //! generates, imputes and saves like one model; [`EnsembleTrainer`] trains its members in
-//! turn and resumes them exactly (the `fit` command's default is two members).
+//! turn and resumes them exactly (the `fit` command's default is two to four members, by
+//! the table's size).
 //!
 //! ## Speed: the fused kernel
 //!

@@ -31,10 +31,15 @@ fn fit_evaluate_sample_inspect_on_the_demo() {
         out.contains("best validation ELBO per dimension") && out.contains("model written to"),
         "{out}"
     );
-    // Two members; each also keeps its fit from one Gaussian when the stacking weight gives
-    // it a share (the line that says so names its place in the file).
+    // Three members (the default for the demo's 2,000 rows); each also keeps its fit from
+    // one Gaussian when the stacking weight gives it a share (the line that says so names
+    // its place in the file).
+    assert!(
+        out.contains("an ensemble of 3 members (seeds 0 to 2)"),
+        "{out}"
+    );
     let beside = out.matches("kept both").count();
-    assert!(beside <= 2, "{out}");
+    assert!(beside <= 3, "{out}");
     assert_eq!(out.matches("of the file)").count(), beside, "{out}");
     assert_eq!(files(&d), vec!["curve.svg", "demo.safetensors", "h.csv"]);
     assert!(std::fs::read_to_string(d.join("curve.svg"))
@@ -122,12 +127,12 @@ fn fit_evaluate_sample_inspect_on_the_demo() {
         serde_json::from_str(String::from_utf8_lossy(&o.stdout).trim()).unwrap()
     };
     let ll = |v: &serde_json::Value| v["loglik_per_row"].as_f64().unwrap();
-    // The default fit is an ensemble of two members (one file), with the fits it reported
+    // The default fit is an ensemble of three members (one file), with the fits it reported
     // kept beside them.
     let alone = evaluate(&model, &[]);
-    assert_eq!(alone["models"], 2 + beside);
+    assert_eq!(alone["models"], 3 + beside);
     let twice = evaluate(&model, &[&model]);
-    assert_eq!(twice["models"], 2 * (2 + beside));
+    assert_eq!(twice["models"], 2 * (3 + beside));
     assert!((ll(&twice) - ll(&alone)).abs() < 1e-9, "{twice} vs {alone}");
     // With the resumed fit: each row's log(½a + ½b) is at least the mean of the two logs
     // (Jensen's inequality) and at least the larger one minus log 2, so the means obey
@@ -368,12 +373,12 @@ fn a_killed_fit_resumes_from_its_periodic_checkpoint() {
     // What the kill left is a complete checkpoint at an even epoch.
     let table = neural_sde::builtin_demo().unwrap();
     let at = neural_sde::EnsembleTrainer::resume(&model, &table).unwrap();
-    // The default fit's two members train in turn, and the file is written once both have
+    // The default fit's three members train in turn, and the file is written once all have
     // trained the epoch.
-    assert_eq!(at.members().len(), 2);
+    assert_eq!(at.members().len(), 3);
     let e = at.members()[0].state().epoch;
     assert!(e >= 2 && e.is_multiple_of(2), "epoch {e}");
-    assert_eq!(at.members()[1].state().epoch, e);
+    assert!(at.members().iter().all(|m| m.state().epoch == e));
     let resumed = d.join("resumed.safetensors");
     let o = run(bin()
         .args([

@@ -203,10 +203,10 @@ fn samples_stream_to_the_file_and_match_the_library() {
         .output()
         .unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    // The default fit's file holds an ensemble: two members, and beside each its fit from
-    // one Gaussian when that has a share of the weight.
+    // The default fit's file holds an ensemble: four members (the default for 120 rows),
+    // and beside each its fit from one Gaussian when that has a share of the weight.
     let model = neural_sde::Ensemble::load(&m).unwrap();
-    assert!((2..=4).contains(&model.members().len()));
+    assert!((4..=8).contains(&model.members().len()));
     let whole = d.join("whole.csv");
     model.generate(9000, 3).unwrap().write_csv(&whole).unwrap();
     assert_eq!(std::fs::read(&out).unwrap(), std::fs::read(&whole).unwrap());
