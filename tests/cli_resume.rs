@@ -138,7 +138,7 @@ fn resuming_past_the_plan_says_how_the_schedule_continues() {
     assert_eq!(s.history.epochs.len(), 4);
     // The schedule ended its cosine decay with epoch 2; epochs 3 and 4 run at its final rate,
     // 0.05 of the default peak 3e-3 (`--help`; TrainConfig's defaults), times the factor of a
-    // fit from a mixture when BIC chose one for this table (1/3, `--help`).
+    // fit from a mixture when the trainer chose one for this table (1/3, `--help`).
     let factor = if s.model_config.noise_components.unwrap_or(1) > 1 {
         1.0 / 3.0
     } else {

@@ -39,12 +39,13 @@ pub struct FitArgs {
     #[arg(long, value_parser = positive_usize)]
     latent_dim: Option<usize>,
     /// Components of the observation noise, a Gaussian mixture over the continuous cells (1:
-    /// one Gaussian). The fit starts from the mixture EM finds [default: chosen by BIC on the
-    /// training rows, from 1 to 10, for tables of up to 64 continuous columns with no
-    /// categorical column and no missing cell, otherwise 1; when BIC chooses a mixture, the fit
-    /// from one Gaussian is also trained and the member's weight is split between the two
-    /// fits by the weight that maximises their mixture's validation log-likelihood (a fit
-    /// whose weight is 0 is dropped)].
+    /// one Gaussian). The fit starts from the mixture EM finds [default: from 1 to 10, the
+    /// larger of the counts chosen by BIC on the training rows and by the likelihood of the
+    /// validation rows, for tables of up to 64 continuous columns with no categorical column
+    /// and no missing cell, otherwise 1; when that is a mixture, the fit from one Gaussian
+    /// is also trained and the member's weight is split between the two fits by the weight
+    /// that maximises their mixture's validation log-likelihood (a fit whose weight is 0 is
+    /// dropped)].
     #[arg(long, value_parser = positive_usize)]
     noise_components: Option<usize>,
     /// Hidden units per layer of the drift and control networks.
@@ -295,7 +296,7 @@ fn prepare(
     // a second start.
     let first = &trainer.members()[0];
     let refit = first.config().refit && first.config().validation_fraction > 0.0;
-    let keep = refit || trainer.members().iter().any(|m| m.state().mixture_by_bic);
+    let keep = refit || trainer.members().iter().any(|m| m.state().mixture_chosen);
     let (dims, rows) = (table.n_cols(), table.n_rows());
     Ok((trainer, dims, rows, keep.then_some(table)))
 }
@@ -453,8 +454,8 @@ fn fit_with_progress(
     outcome
 }
 
-/// Beside each member whose fit started from the Gaussian mixture BIC chose, trains the fit
-/// from one Gaussian (all of them together, within what is left of the time budget) and
+/// Beside each member whose fit started from a Gaussian mixture of the count it chose, trains
+/// the fit from one Gaussian (all of them together, within what is left of the time budget) and
 /// weighs the two fits by their validation likelihood, keeping both or one (see
 /// `EnsembleTrainer::compare_starts`); a member's report becomes the fit from one Gaussian's
 /// when that alone was kept, with the seconds of both. Returns, per member, the line that
@@ -469,7 +470,7 @@ fn compare_starts(
 ) -> Result<Vec<Option<String>>, Failure> {
     let root = group.is_root();
     let none = vec![None; reports.len()];
-    if !trainer.members().iter().any(|m| m.state().mixture_by_bic) {
+    if !trainer.members().iter().any(|m| m.state().mixture_chosen) {
         return Ok(none);
     }
     let components: Vec<usize> = trainer
@@ -543,7 +544,7 @@ fn compare_starts(
             String::new()
         };
         notes[i] = Some(format!(
-            "{whose}started from a Gaussian mixture of {components} components (chosen by BIC) and from one Gaussian: validation log-likelihood per dimension {:.4} against {:.4} nats (importance-weighted, {} paths per row); {kept}",
+            "{whose}started from a Gaussian mixture of {components} components (the larger of the counts chosen by BIC and by the validation rows) and from one Gaussian: validation log-likelihood per dimension {:.4} against {:.4} nats (importance-weighted, {} paths per row); {kept}",
             per_dim(c.mixture),
             per_dim(c.gaussian),
             neural_sde::VALIDATION_LOGLIK_PATHS

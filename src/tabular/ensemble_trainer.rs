@@ -53,7 +53,7 @@ pub struct EnsembleTrainer {
 /// How [`EnsembleTrainer::compare_starts`] weighed the two fits of one member.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct StartComparison {
-    /// Validation log-likelihood of the member's fit from the start BIC chose (standardised
+    /// Validation log-likelihood of the member's fit from the mixture start (standardised
     /// units, per row).
     pub mixture: f64,
     /// That of the fit from one Gaussian.

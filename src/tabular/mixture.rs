@@ -36,7 +36,8 @@ impl std::fmt::Display for Covariance {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default)]
 pub struct MixtureOptions {
-    /// Largest number of components tried by [`MixtureModel::select`].
+    /// Largest number of components tried by [`MixtureModel::select`] and
+    /// [`MixtureModel::fit_counts`].
     pub max_components: usize,
     /// EM runs from different seeded starts per component count; the best is kept.
     pub restarts: usize,
@@ -191,23 +192,36 @@ impl MixtureModel {
     /// # Errors
     /// As [`MixtureModel::fit`].
     pub fn select(table: &Table, covariance: Covariance, options: &MixtureOptions) -> Result<Self> {
+        let fits = Self::fit_counts(table, covariance, options)?;
+        let best = lowest_bic(&fits);
+        fits.into_iter().nth(best).ok_or_else(|| Error::Data {
+            path: table.source().to_path_buf(),
+            reason: "too few rows for even one Gaussian component; add rows".into(),
+        })
+    }
+
+    /// The mixtures of 1, 2, … up to `options.max_components` components (as
+    /// [`MixtureModel::select`] considers them: the count stops before a mixture would have
+    /// as many free parameters as the table has values), in that order; empty when the
+    /// table is too small for one component.
+    ///
+    /// # Errors
+    /// As [`MixtureModel::fit`].
+    pub fn fit_counts(
+        table: &Table,
+        covariance: Covariance,
+        options: &MixtureOptions,
+    ) -> Result<Vec<Self>> {
         options.validate()?;
-        let mut best: Option<(f64, Self)> = None;
         let values = table.n_rows() * table.n_cols();
+        let mut fits = Vec::new();
         for k in 1..=options.max_components.min(table.n_rows()) {
             if parameter_count(k, table.n_cols(), covariance) >= values {
                 break;
             }
-            let m = Self::fit(table, k, covariance, options)?;
-            let bic = m.bic();
-            if best.as_ref().is_none_or(|(b, _)| bic < *b) {
-                best = Some((bic, m));
-            }
+            fits.push(Self::fit(table, k, covariance, options)?);
         }
-        best.map(|(_, m)| m).ok_or_else(|| Error::Data {
-            path: table.source().to_path_buf(),
-            reason: "too few rows for even one Gaussian component; add rows".into(),
-        })
+        Ok(fits)
     }
 
     /// Weights, means (`k × d`) and covariances (`k × d × d`) in the units of the table
@@ -305,6 +319,18 @@ impl MixtureModel {
         }
         Ok(out)
     }
+}
+
+/// The index of the mixture with the lowest BIC in `fits` (the first of equals; 0 when
+/// empty).
+pub(crate) fn lowest_bic(fits: &[MixtureModel]) -> usize {
+    let mut best = 0;
+    for (i, m) in fits.iter().enumerate() {
+        if m.bic() < fits[best].bic() {
+            best = i;
+        }
+    }
+    best
 }
 
 /// Free parameters of a mixture (see [`MixtureModel::parameters`]).

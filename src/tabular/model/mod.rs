@@ -63,10 +63,11 @@ pub struct LatentConfig {
     /// mixture `y_c = m(z) + ε`, `ε ~ Σ_k π_k N(δ_k, Σ_k)` (`Some(1)`: one Gaussian).
     /// [`crate::Trainer`] starts from the mixture EM fits to the training rows, whose
     /// marginal the untrained model then equals exactly. `None` lets the trainer choose the
-    /// count by BIC (1 to 10) for tables of up to 64 continuous columns with no categorical
-    /// column and no missing cell (one Gaussian otherwise), and offers the fit from one
-    /// Gaussian to compare with ([`crate::Trainer::gaussian_start`]); a model built directly
-    /// with `None` has one component.
+    /// count, 1 to 10 (the larger of the counts chosen by BIC on the training rows and by
+    /// the likelihood of the validation rows), for tables of up to 64 continuous columns with
+    /// no categorical column and no missing cell (one Gaussian otherwise), and offers the fit
+    /// from one Gaussian to compare with ([`crate::Trainer::gaussian_start`]); a model built
+    /// directly with `None` has one component.
     pub noise_components: Option<usize>,
     /// Set when the prior drift was supplied by a [`PriorFactory`] rather than built from
     /// [`LatentConfig::prior`]; loading such a model needs the same factory.

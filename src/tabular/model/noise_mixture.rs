@@ -4,7 +4,7 @@
 //! With the prior drift at zero and a linear decoder the model's marginal is then the
 //! Gaussian mixture `Σ_k π_k N(b + δ_k, σ²T WWᵀ + Σ_k)`, so the family contains every
 //! full-covariance Gaussian mixture whose covariances lie above `σ²T WWᵀ`, and the trainer
-//! starts from the one that BIC selects on the training rows (see
+//! starts from one fitted by EM to the training rows (see
 //! [`super::LatentModel::init_from_mixture`]). The mixture density network (Bishop, *Mixture
 //! Density Networks*, Aston University report NCRG/94/004, 1994) is the same construction
 //! with a network choosing the parameters; here the latent path moves the means and the

@@ -343,15 +343,22 @@ impl Trainer {
         drop((train_idx, val_idx));
         let coded = train_rows.slice_f64(0..train_rows.len()).0;
         let mut model_cfg = model_cfg;
-        let mixture = start::noise_mixture(&model_cfg, coder.layout(), &coded, train_cfg.seed)?;
-        let mixture_by_bic = model_cfg.noise_components.is_none() && mixture.is_some();
+        let held_out = val_rows.slice_f64(0..val_rows.len()).0;
+        let mixture = start::noise_mixture(
+            &model_cfg,
+            coder.layout(),
+            &coded,
+            &held_out,
+            train_cfg.seed,
+        )?;
+        let mixture_chosen = model_cfg.noise_components.is_none() && mixture.is_some();
         model_cfg.noise_components = Some(mixture.as_ref().map_or(1, |m| m.0.len()));
         let model = LatentModel::build(&model_cfg, coder.layout(), train_cfg.seed, prior)?;
         match &mixture {
             Some((w, m, c)) => model.init_from_mixture(&coded, w, m, c)?,
             None => model.init_from_coded(&coded)?,
         }
-        drop(coded);
+        drop((coded, held_out));
         let optimizer = AdamW::new(model.varmap(), train_cfg.optimizer.adamw.clone())?;
         let best = snapshot(model.varmap())?;
         let state = TrainState {
@@ -367,7 +374,7 @@ impl Trainer {
             table_fingerprint: fingerprint(table),
             seconds: 0.0,
             planned_steps: None,
-            mixture_by_bic,
+            mixture_chosen,
             starts_weighed: false,
         };
         let mut trainer = Self {
@@ -678,7 +685,7 @@ impl Trainer {
         }
     }
 
-    /// When this fit started from the Gaussian mixture that BIC chose (see
+    /// When this fit started from a Gaussian mixture whose count the trainer chose (see
     /// [`LatentConfig::noise_components`]), holds out validation rows and ran its plan or
     /// stopped early: a fresh trainer on
     /// the same table, split and settings that starts from one Gaussian instead. Train it and
@@ -689,7 +696,7 @@ impl Trainer {
     /// # Errors
     /// As [`Trainer::new`].
     pub fn gaussian_start(&self, table: &Table) -> Result<Option<Trainer>> {
-        if !self.state.mixture_by_bic
+        if !self.state.mixture_chosen
             || self.state.starts_weighed
             || self.val_rows.is_empty()
             || !self.ended_well()

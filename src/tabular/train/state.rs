@@ -41,11 +41,13 @@ pub struct TrainState {
     /// stored: then the configuration's epochs are used.
     #[serde(default)]
     pub planned_steps: Option<u64>,
-    /// Set when the start was the Gaussian mixture that BIC chose on the training rows
-    /// (the model's `noise_components` was not given): [`crate::Trainer::gaussian_start`] then
-    /// offers the fit from one Gaussian to compare with.
-    #[serde(default)]
-    pub mixture_by_bic: bool,
+    /// Set when the trainer chose the start's component count (the model's
+    /// `noise_components` was not given) and chose a mixture: [`crate::Trainer::gaussian_start`]
+    /// then offers the fit from one Gaussian to compare with. (Named `mixture_by_bic` in
+    /// files written before the count also looked at the validation rows; they read the
+    /// same.)
+    #[serde(default, alias = "mixture_by_bic")]
+    pub mixture_chosen: bool,
     /// Set on a member's fits once [`crate::EnsembleTrainer::compare_starts`] has weighed
     /// them against each other (or [`crate::Trainer::keep_better`] kept one), so that a
     /// resumed fit does not train another start.
