@@ -396,6 +396,18 @@ fn files_of_format_version_1_still_load_and_non_finite_weights_are_never_written
         Trainer::resume(&v1, &t).unwrap().state(),
         Trainer::resume(&p, &t).unwrap().state()
     );
+    // Files written before the start's count looked at the validation rows name the flag of a
+    // chosen mixture start `mixture_by_bic`; they read the same.
+    let older = d.join("mixture_by_bic.safetensors");
+    rewrite(&p, &older, |meta, _| {
+        let mut c: serde_json::Value = serde_json::from_str(&meta["neural-sde"]).unwrap();
+        let state = c["header"]["state"].as_object_mut().unwrap();
+        assert!(state.remove("mixture_chosen").is_some());
+        state.insert("mixture_by_bic".into(), true.into());
+        meta.insert("neural-sde".into(), c.to_string());
+    });
+    let resumed = Trainer::resume(&older, &t).unwrap();
+    assert!(resumed.state().mixture_chosen);
     // A NaN weight: saving refuses and writes nothing.
     let var = &sorted_vars(tr.model().latent().varmap()).unwrap()[0].1;
     let nan = (var.as_tensor() * f64::NAN).unwrap();
