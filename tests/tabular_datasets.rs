@@ -1,7 +1,8 @@
 //! Real open data: the latent-diffusion model at default settings, with the `fit` command's
-//! protocol (an ensemble of four members of seeds `seed` to `seed + 3`, each from the start
-//! BIC chooses, and when that is a mixture also from one Gaussian, the two weighed by their
-//! likelihood on its validation rows), against classical models fitted to
+//! protocol (an ensemble of four members of seeds `seed` to `seed + 3`, each from the
+//! Gaussian mixture whose component count is the larger of BIC's on its training rows and
+//! its validation rows' choice, and when that is a mixture also from one Gaussian, the two
+//! weighed by their likelihood on its validation rows), against classical models fitted to
 //! the same training rows: the full-covariance Gaussian by maximum likelihood, and the best
 //! of the Gaussian mixtures with diagonal and with full covariances whose component counts
 //! BIC chooses (Schwarz 1978, *Estimating the dimension of a model*, Ann. Stat. 6(2)), the
@@ -42,19 +43,27 @@ fn mixture_rows(train: &Table, test: &Table) -> [Vec<f64>; 2] {
     })
 }
 
-/// The default protocol on the "mod5" training rows with `train_cfg` and each seed of
-/// `seeds` (`None`: the config's own): the model's held-out log-likelihood per dimension
-/// (data units; per row averaged over the seeds) against the Gaussian and the best mixture,
-/// each as the paired mean over held-out rows of (model − baseline) per dimension with its
-/// standard error (row-to-row spread cancels).
-fn compare_seeds(
-    table: &neural_sde::Table,
-    train_cfg: TrainConfig,
-    seeds: &[Option<u64>],
-) -> Comparison {
-    let (train, test) = baseline::split_mod5(table);
-    let gauss_rows = baseline::gaussian_test_loglik_rows(&train, &test);
-    let [full_rows, diagonal_rows] = mixture_rows(&train, &test);
+/// The default protocol with `train_cfg`, trained on the rows outside each fold of `folds`
+/// and scored on the fold's rows (fold `f`: the rows with `i % 5 == f`; fold 4 is the "mod5"
+/// split), every held-out row of every fold pooled: the model's held-out log-likelihood per
+/// dimension (data units) against the Gaussian and the best mixture, each fitted to the same
+/// training rows as the model, as the paired mean over held-out rows of (model − baseline)
+/// per dimension with its standard error (row-to-row spread cancels).
+fn compare_folds(table: &neural_sde::Table, train_cfg: TrainConfig, folds: &[usize]) -> Comparison {
+    let (mut model_rows, mut gauss_rows) = (Vec::new(), Vec::new());
+    let (mut full_rows, mut diagonal_rows) = (Vec::new(), Vec::new());
+    let mut d = 0.0;
+    for &fold in folds {
+        let (train, test) = baseline::split_fold(table, fold);
+        gauss_rows.extend(baseline::gaussian_test_loglik_rows(&train, &test));
+        let [full, diagonal] = mixture_rows(&train, &test);
+        full_rows.extend(full);
+        diagonal_rows.extend(diagonal);
+        let model = default_fit(&train, train_cfg.clone());
+        let eval = model.evaluate(&test, EvalOptions::new(128, 11)).unwrap();
+        d = eval.dims as f64;
+        model_rows.extend(eval.loglik_rows);
+    }
     let sum = |v: &[f64]| v.iter().sum::<f64>();
     // The better of the two on these very rows.
     let best_rows = if sum(&full_rows) >= sum(&diagonal_rows) {
@@ -62,22 +71,6 @@ fn compare_seeds(
     } else {
         &diagonal_rows
     };
-    let mut model_rows = vec![0.0; gauss_rows.len()];
-    let mut d = 0.0;
-    let mut model_per_dim = 0.0;
-    for seed in seeds {
-        let cfg = TrainConfig {
-            seed: seed.unwrap_or(train_cfg.seed),
-            ..train_cfg.clone()
-        };
-        let model = default_fit(&train, cfg);
-        let eval = model.evaluate(&test, EvalOptions::new(128, 11)).unwrap();
-        d = eval.dims as f64;
-        model_per_dim += eval.loglik_per_dim / seeds.len() as f64;
-        for (m, r) in model_rows.iter_mut().zip(&eval.loglik_rows) {
-            *m += r / seeds.len() as f64;
-        }
-    }
     let paired = |base: &[f64]| -> (f64, f64) {
         let diff: Vec<f64> = model_rows
             .iter()
@@ -94,7 +87,7 @@ fn compare_seeds(
     let (full_gain, full_se) = paired(&full_rows);
     let (best_gain, best_se) = paired(best_rows);
     let c = Comparison {
-        model: model_per_dim,
+        model: sum(&model_rows) / n / d,
         gaussian: sum(&gauss_rows) / n / d,
         gain,
         gain_se,
@@ -109,8 +102,9 @@ fn compare_seeds(
     c
 }
 
+/// [`compare_folds`] on the "mod5" split alone.
 fn compare(table: &neural_sde::Table, train_cfg: TrainConfig) -> Comparison {
-    compare_seeds(table, train_cfg, &[None])
+    compare_folds(table, train_cfg, &[4])
 }
 
 /// The `fit` command's default training settings for each member of its ensemble.
@@ -137,7 +131,7 @@ struct Comparison {
 }
 
 #[test]
-fn iris_beats_full_covariance_gaussian() {
+fn iris_beats_full_covariance_gaussian_and_the_best_mixture() {
     // Fisher's iris as shipped by linfa-datasets. Baseline computed independently with numpy (standardised space,
     // split mod5): full-covariance Gaussian test log-likelihood per dimension
     // −0.8330767812, with Σ log sd / d = −0.1753928495.
@@ -151,18 +145,21 @@ fn iris_beats_full_covariance_gaussian() {
         g + sd
     );
     assert!((sd - (-0.1753928495)).abs() < 1e-8);
-    // 30 held-out rows make one fit's gain noisy (measured over seeds 0–5: 1.9 to 5.7
-    // standard errors); the default ensemble averages four seeds.
-    let c = compare(&t, defaults());
+    // The mod5 split holds out 30 rows, too few to show a lead of a few hundredths per
+    // dimension (measured there: +0.056 ± 0.030 over the best mixture, 1.9 standard errors).
+    // Fivefold cross-validation (common practice, no source) scores every one of the 150
+    // rows once, each by the default protocol fitted to the other 120 (fold 4 is the mod5
+    // split), against the Gaussian and the mixtures fitted to the same 120. The family
+    // contains the full-covariance mixtures and the fit can start from one (BIC chooses two
+    // components in four folds and eight in fold 3): measured +0.090 ± 0.023 per dimension over the
+    // full-covariance mixture BIC chooses, also the best (folds 0–4: +0.211, +0.036,
+    // +0.022, +0.117, +0.054); with the start's count by BIC alone the defaults were +0.003
+    // ± 0.035 (benchmarks document).
+    let c = compare_folds(&t, defaults(), &[0, 1, 2, 3, 4]);
     assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
     assert!((c.model - c.gaussian - c.gain).abs() < 1e-9, "{c:?}");
-    // The family contains the full-covariance mixtures and the fit can start from the one BIC
-    // chooses (two components here, −0.444 per dimension, also the best mixture): not behind
-    // it by two standard errors. Measured ahead, +0.037 ± 0.027 per dimension (two members:
-    // +0.023 ± 0.023; a single fit was −0.019 ± 0.027); beating it by two standard errors
-    // is the open target of the benchmarks document, out of reach of 30 held-out rows
-    // unless the lead is over 0.05.
-    assert!(c.full_gain > -2.0 * c.full_se, "{c:?}");
+    assert!(c.full_gain > 2.0 * c.full_se, "{c:?}");
+    assert!(c.best_gain > 2.0 * c.best_se, "{c:?}");
     assert!(
         (c.model - c.full_mixture - c.full_gain).abs() < 1e-9,
         "{c:?}"
@@ -183,9 +180,10 @@ fn red_wine_quality_beats_full_covariance_gaussian() {
         "baseline {}",
         g + sd
     );
-    // Capped at 40 epochs per member to bound the suite's run time (measured +0.044 ± 0.007
-    // over the best mixture, 6.3 standard errors; two members: +0.037 ± 0.007); the default
-    // (150 per member, with early stopping) only does better.
+    // Capped at 40 epochs per member to bound the suite's run time (measured +0.065 ± 0.008
+    // over the best mixture, 8.1 standard errors; with the start's count by BIC alone: +0.044
+    // ± 0.007; two members: +0.037 ± 0.007); the default (150 per member, with early
+    // stopping) only does better.
     let cfg = TrainConfig {
         epochs: 40,
         ..TrainConfig::default()
@@ -205,9 +203,10 @@ fn diabetes_beats_full_covariance_gaussian_and_the_best_mixture() {
     // chooses, four components, 2.780, is the best). The default protocol starts from such
     // a mixture and trains it at a third of the learning rate, keeping the running average
     // of its weights; the default ensemble of four such fits is ahead of the mixture by more
-    // than two standard errors, the benchmarks document's target (measured +0.235 ± 0.016
-    // per dimension, 14.6 standard errors; two members: +0.151 ± 0.028; the mean of two
-    // single fits' figures was +0.132 ± 0.046).
+    // than two standard errors, the benchmarks document's target (measured +0.244 ± 0.020
+    // per dimension, 12.4 standard errors; with the start's count by BIC alone: +0.235 ±
+    // 0.016; two members: +0.151 ± 0.028; the mean of two single fits' figures was +0.132 ±
+    // 0.046).
     let t = baseline::diabetes();
     let c = compare(&t, defaults());
     assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
@@ -235,11 +234,13 @@ fn demo_table_beats_full_covariance_gaussian() {
     assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
     assert!((c.model - c.gaussian - c.gain).abs() < 1e-9, "{c:?}");
     // The mixture start brings the night-time spike of `light_klux` that the Gaussian start
-    // cannot reach (−2.87 per dimension before it): not behind the full-covariance mixture
-    // BIC chooses (−2.568, also the best mixture) by two standard errors; measured ahead,
-    // +0.010 ± 0.005, 1.9 standard errors (two members: +0.016 ± 0.007; a single fit of 40
-    // epochs was +0.013 ± 0.008). The full defaults are ahead in some seeds and behind in
-    // others, level on average (benchmarks document).
-    assert!(c.full_gain > -2.0 * c.full_se, "{c:?}");
-    assert!(c.best_gain > -2.0 * c.best_se, "{c:?}");
+    // cannot reach (−2.87 per dimension before it). The members' validation rows choose 5 to
+    // 10 components where BIC on their training rows chooses 4 to 6, and the fit beats the
+    // full-covariance mixture BIC chooses on all the training rows (−2.568, also the best
+    // mixture) by two standard errors, the benchmarks document's target: measured +0.022 ±
+    // 0.005, 4.0 standard errors (with the start's count by BIC alone it was +0.010 ± 0.005,
+    // and the test asserted only "not behind"; the full defaults are ahead in every seed of
+    // the benchmarks document).
+    assert!(c.full_gain > 2.0 * c.full_se, "{c:?}");
+    assert!(c.best_gain > 2.0 * c.best_se, "{c:?}");
 }

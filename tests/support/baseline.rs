@@ -38,8 +38,14 @@ fn to_table(x: &ndarray::Array2<f64>, names: &[&str]) -> Table {
 
 /// Split "mod5": row i is held out iff i % 5 == 4.
 pub fn split_mod5(t: &Table) -> (Table, Table) {
-    let train: Vec<usize> = (0..t.n_rows()).filter(|i| i % 5 != 4).collect();
-    let test: Vec<usize> = (0..t.n_rows()).filter(|i| i % 5 == 4).collect();
+    split_fold(t, 4)
+}
+
+/// Fold `fold` of five (common practice, no source): the rows with `i % 5 != fold` for
+/// training and those with `i % 5 == fold` held out ([`split_mod5`] is fold 4).
+pub fn split_fold(t: &Table, fold: usize) -> (Table, Table) {
+    let train: Vec<usize> = (0..t.n_rows()).filter(|i| i % 5 != fold).collect();
+    let test: Vec<usize> = (0..t.n_rows()).filter(|i| i % 5 == fold).collect();
     (t.take_rows(&train).unwrap(), t.take_rows(&test).unwrap())
 }
 
