@@ -455,8 +455,8 @@ fn fit_with_progress(
 }
 
 /// Beside each member whose fit started from a Gaussian mixture of the count it chose, trains
-/// the fit from one Gaussian (all of them together, within what is left of the time budget) and
-/// weighs the two fits by their validation likelihood, keeping both or one (see
+/// the fit from one Gaussian (all of them together, within what is left of the time budget)
+/// and weighs the two fits by their validation likelihood, keeping both or one (see
 /// `EnsembleTrainer::compare_starts`); a member's report becomes the fit from one Gaussian's
 /// when that alone was kept, with the seconds of both. Returns, per member, the line that
 /// reports the outcome.
