@@ -153,8 +153,8 @@ fn iris_beats_full_covariance_gaussian_and_the_best_mixture() {
     // contains the full-covariance mixtures and the fit can start from one (BIC chooses two
     // components in four folds and eight in fold 3): measured +0.090 ± 0.023 per dimension
     // over the full-covariance mixture BIC chooses, also the best (folds 0–4: +0.211,
-    // +0.036, +0.022, +0.117, +0.054); with the start's count by BIC alone the defaults were
-    // +0.003 ± 0.035 (benchmarks document).
+    // +0.036, +0.022, +0.117, +0.054); with the start's count by BIC alone +0.083, and with
+    // two members +0.003 ± 0.035 (benchmarks document).
     let c = compare_folds(&t, defaults(), &[0, 1, 2, 3, 4]);
     assert!(c.gain > 2.0 * c.gain_se, "{c:?}");
     assert!((c.model - c.gaussian - c.gain).abs() < 1e-9, "{c:?}");
