@@ -303,9 +303,9 @@ fn prepare(
 
 /// The default fit's members hold at most about this many rows in all: as many members, 2
 /// to 4, as keep within it (one for tables of [`BIG_TABLE_ROWS`] rows or more). Each member
-/// costs one more fit: four members of wine's 1,279 training rows took 99–112 s against
-/// 45–56 s for two, so tables of a few thousand rows get fewer and end within the default
-/// time budget (benchmarks document).
+/// costs one more fit: four members of wine's 1,279 training rows took 129–142 s with two
+/// fits side by side (the whole 1,599-row table alone: 118 s), so tables of a few thousand
+/// rows get fewer and end within the default time budget (benchmarks document).
 const DEFAULT_MEMBER_ROWS: usize = 6_400;
 
 /// The default member count for a table of `rows` rows (see [`DEFAULT_MEMBER_ROWS`]).
