@@ -61,6 +61,12 @@ impl RowLayout {
         }
     }
 
+    /// Whether every continuous cell of the coded row `row` (of [`RowLayout::coded_width`]
+    /// values) is observed: its mask values, after the decoder's outputs, are all 1.
+    pub(crate) fn all_observed(&self, row: &[f64]) -> bool {
+        row[self.output_width()..].iter().all(|&m| m > 0.5)
+    }
+
     /// The layout of a model whose rows are all continuous and complete (the only layout
     /// before column types existed).
     pub fn is_plain(&self) -> bool {

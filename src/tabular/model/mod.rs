@@ -667,9 +667,7 @@ impl LatentModel {
         let l = &*self.layout;
         let cw = l.coded_width();
         let ow = l.output_width();
-        let complete = rows
-            .chunks_exact(cw)
-            .all(|r| r[ow..].iter().all(|&m| m > 0.5));
+        let complete = rows.chunks_exact(cw).all(|r| l.all_observed(r));
         let t = if complete {
             let mut v = Vec::with_capacity(n * ow);
             for r in rows.chunks_exact(cw) {

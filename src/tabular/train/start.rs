@@ -39,10 +39,8 @@ pub(super) fn noise_mixture(
     seed: u64,
 ) -> Result<Option<MixtureParts>> {
     let dc = layout.continuous;
-    let (cw, ow) = (layout.coded_width(), layout.output_width());
-    let complete = rows
-        .chunks_exact(cw)
-        .all(|r| r[ow..].iter().all(|&m| m > 0.5));
+    let cw = layout.coded_width();
+    let complete = rows.chunks_exact(cw).all(|r| layout.all_observed(r));
     match cfg.noise_components {
         Some(1) => return Ok(None),
         Some(m) if !complete => {
@@ -96,7 +94,7 @@ pub(super) fn noise_mixture(
             };
             let held_out: Vec<f64> = validation
                 .chunks_exact(cw)
-                .filter(|r| r[ow..].iter().all(|&m| m > 0.5))
+                .filter(|r| layout.all_observed(r))
                 .flat_map(|r| r[..dc].iter().copied())
                 .collect();
             let held_out = (!held_out.is_empty())
