@@ -76,12 +76,9 @@ fn history_and_observer() {
         // Five minibatches per epoch; the last one's learning rate is still in the linear
         // warm-up of 50 steps: peak · step / 50 (linear warm-up, common practice, no source).
         assert_eq!(r.step, 5 * (e as u64 + 1));
-        let peak = TrainConfig::default().optimizer.learning_rate() * scale;
-        let expected = peak * r.step as f64 / 50.0;
-        assert!(
-            (r.learning_rate - expected).abs() <= 1e-12 * expected,
-            "{r:?}"
-        );
+        // The scale multiplies the scheduled rate, in that order.
+        let peak = TrainConfig::default().optimizer.learning_rate();
+        assert_eq!(r.learning_rate, peak * r.step as f64 / 50.0 * scale);
         assert!(r.val_elbo.is_some_and(f64::is_finite) && r.train_elbo.is_finite());
     }
     let d = std::env::temp_dir().join(format!("neural-sde-history-{}", std::process::id()));
